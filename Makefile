@@ -1,0 +1,28 @@
+# Two set-up commands for a fresh clone: `make demo` and `make test`.
+PY ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: demo test lint bench clean
+
+$(STAMP): pyproject.toml
+	$(PY) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e ".[dev,distributed]"
+	touch $(STAMP)
+
+demo: $(STAMP)
+	$(BIN)/stackdr demo
+
+test: $(STAMP)
+	$(BIN)/python -m pytest
+
+lint: $(STAMP)
+	$(BIN)/ruff check stackdr tests benchmarks examples
+
+bench: $(STAMP)
+	$(BIN)/python benchmarks/run_all.py
+
+clean:
+	rm -rf $(VENV) build *.egg-info
