@@ -1,0 +1,257 @@
+"""Result records of the main estimator: tables a statistician can read.
+
+``BlendResult.summary()`` prints an aligned table and returns it as a DataFrame; notebooks get an
+HTML rendering through ``_repr_html_``.
+"""
+
+from __future__ import annotations
+
+import html
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy.stats import norm
+
+CAUTION = (
+    "A causal reading needs consistency, no unmeasured confounding and positivity; the tool "
+    "cannot check the first two. The estimate supports, and does not replace, subject-matter, "
+    "clinical or policy review; local regulations and licensed practice come first."
+)
+
+
+@dataclass
+class EstimatorRow:
+    """One estimator of the comparison table (Wald interval until a bootstrap replaces it)."""
+
+    name: str
+    kind: str
+    estimate: float
+    se: float
+    alpha: np.ndarray
+    beta: np.ndarray
+    pseudo_risk: float
+    level: float
+    low: float = float("nan")
+    high: float = float("nan")
+    interval_method: str = "wald"
+    bootstrap_se: float = float("nan")
+
+    def __post_init__(self) -> None:
+        if np.isnan(self.low):
+            z = norm.ppf(0.5 + self.level / 2)
+            self.low, self.high = self.estimate - z * self.se, self.estimate + z * self.se
+
+    @property
+    def wald_interval(self) -> tuple[float, float]:
+        z = norm.ppf(0.5 + self.level / 2)
+        return self.estimate - z * self.se, self.estimate + z * self.se
+
+
+@dataclass
+class BlendResult:
+    """Everything a fit produced.
+
+    Attributes
+    ----------
+    estimate, se : float
+        Target-aimed estimate and its influence-function standard error (Wald, ignores the
+        selection of weights; see ``interval`` for the bootstrap interval when computed).
+    alpha, beta : pandas.Series
+        Chosen weights of the propensity and outcome libraries, indexed by learner name.
+    estimators : list of EstimatorRow
+        The comparison table rows (target-aimed first).
+    search : solvers.WeightSearch
+        Sensitivities, pseudo-risk and solver records at the chosen weights.
+    crossfit, analysis, data, target : the ingredients (out-of-fold predictions, pair tables,
+        losses, validated data).
+    bootstrap : inference.BootstrapResult or None
+    """
+
+    target: object
+    data: object
+    crossfit: object
+    analysis: object
+    search: object
+    estimate: float
+    se: float
+    level: float
+    alpha: pd.Series
+    beta: pd.Series
+    estimators: list
+    settings: dict
+    timings: dict = field(default_factory=dict)
+    bootstrap: object = None
+
+    # ------------------------------------------------------------------ tables
+    @property
+    def interval(self) -> tuple[float, float]:
+        """Interval of the target-aimed estimate (bootstrap when computed, else Wald)."""
+        return self.estimators[0].low, self.estimators[0].high
+
+    @property
+    def interval_method(self) -> str:
+        return self.estimators[0].interval_method
+
+    @property
+    def wald_interval(self) -> tuple[float, float]:
+        return self.estimators[0].wald_interval
+
+    @property
+    def pair_table(self) -> pd.DataFrame:
+        """Psi: the DR estimate for every (propensity learner, outcome learner) pair."""
+        return self._learner_frame(self.analysis.Psi)
+
+    @property
+    def pair_standard_errors(self) -> pd.DataFrame:
+        return self._learner_frame(self.analysis.pair_se)
+
+    def _learner_frame(self, values) -> pd.DataFrame:
+        return pd.DataFrame(
+            values,
+            index=pd.Index(self.crossfit.propensity_names, name="propensity learner"),
+            columns=pd.Index(self.crossfit.outcome_names, name="outcome learner"),
+        )
+
+    @property
+    def pseudo_risk(self) -> float:
+        return self.search.risk
+
+    @property
+    def sensitivities(self) -> dict:
+        return {"outcome_direction": self.search.s_out, "weight_direction": self.search.s_ps}
+
+    @property
+    def losses(self) -> pd.DataFrame:
+        """Out-of-fold prediction loss per learner (log-loss or squared error)."""
+        cf = self.crossfit
+        prop_metric = "log-loss" if cf.propensity_kind == "classifier" else "squared error"
+        rows = [
+            ("propensity", name, float(v), prop_metric, float(w))
+            for name, v, w in zip(
+                cf.propensity_names, self.analysis.losses["propensity"], self.analysis.stack_alpha
+            )
+        ] + [
+            ("outcome", name, float(v), "squared error", float(w))
+            for name, v, w in zip(
+                cf.outcome_names, self.analysis.losses["outcome"], self.analysis.stack_beta
+            )
+        ]
+        return pd.DataFrame(rows, columns=["side", "learner", "loss", "metric", "stacking weight"])
+
+    @property
+    def clip_counts(self) -> pd.DataFrame:
+        counts = self.crossfit.clip_counts.sum(axis=0)
+        return pd.DataFrame(
+            counts,
+            index=pd.Index(self.crossfit.propensity_names, name="propensity learner"),
+            columns=["clipped low", "clipped high"],
+        )
+
+    @property
+    def solver_records(self) -> dict:
+        return dict(self.search.records)
+
+    @property
+    def tie_break_active(self) -> bool:
+        """Whether the tie-break moved either side's weights away from the pure minimiser."""
+        return any(
+            bool(rec.details.get("moved", False))
+            for key, rec in self.search.records.items()
+            if "tie_break" in key
+        )
+
+    def comparison(self, include_pairs: bool = False) -> pd.DataFrame:
+        """One row per estimator: estimate, SE, interval, pseudo-risk, weights."""
+        rows = []
+        for r in self.estimators:
+            rows.append(
+                {
+                    "estimator": r.name,
+                    "kind": r.kind,
+                    "estimate": r.estimate,
+                    "se": r.se,
+                    "low": r.low,
+                    "high": r.high,
+                    "interval": r.interval_method,
+                    "pseudo_risk": r.pseudo_risk,
+                    "propensity_weights": _weights_text(self.crossfit.propensity_names, r.alpha),
+                    "outcome_weights": _weights_text(self.crossfit.outcome_names, r.beta),
+                }
+            )
+        if include_pairs:
+            Psi, se = self.analysis.Psi, self.analysis.pair_se
+            z = norm.ppf(0.5 + self.level / 2)
+            for k, pk in enumerate(self.crossfit.propensity_names):
+                for j, oj in enumerate(self.crossfit.outcome_names):
+                    rows.append(
+                        {
+                            "estimator": f"pair {pk} | {oj}",
+                            "kind": "single pair",
+                            "estimate": Psi[k, j],
+                            "se": se[k, j],
+                            "low": Psi[k, j] - z * se[k, j],
+                            "high": Psi[k, j] + z * se[k, j],
+                            "interval": "wald",
+                            "pseudo_risk": np.nan,
+                            "propensity_weights": pk,
+                            "outcome_weights": oj,
+                        }
+                    )
+        return pd.DataFrame(rows)
+
+    def summary(self, print_it: bool = True) -> pd.DataFrame:
+        """Print an aligned summary and return the comparison table as a DataFrame."""
+        table = self.comparison()
+        if print_it:
+            print(self._summary_text(table))
+        return table
+
+    def _summary_text(self, table: pd.DataFrame) -> str:
+        pct = f"{100 * self.level:g}%"
+        lines = [
+            f"stackdr: {self.target.description}",
+            f"n = {self.data.n}, folds = {self.settings['folds']}, blend = "
+            f"{self.settings['blend']}, criterion = {self.settings['criterion']}, "
+            f"tie-break = {'on' if self.settings['tie_break'] else 'off'}",
+            "",
+            f"{'estimator':<30}{'estimate':>12}{'SE':>10}{pct + ' low':>12}{pct + ' high':>12}"
+            f"{'interval':>12}{'pseudo-risk':>13}",
+        ]
+        for _, r in table.iterrows():
+            lines.append(
+                f"{r['estimator']:<30}{r['estimate']:>12.4g}{r['se']:>10.3g}{r['low']:>12.4g}"
+                f"{r['high']:>12.4g}{r['interval']:>12}{r['pseudo_risk']:>13.3g}"
+            )
+        lines += ["", "Weights (target-aimed):"]
+        for side, series in (("propensity", self.alpha), ("outcome", self.beta)):
+            lines.append(f"  {side:<11}" + "  ".join(f"{k} {v:.3f}" for k, v in series.items()))
+        lines += [
+            f"Sensitivities at the chosen weights: outcome direction {self.search.s_out:.3g}, "
+            f"weight direction {self.search.s_ps:.3g}; tie-break moved weights: "
+            f"{'yes' if self.tie_break_active else 'no'}",
+            "",
+            "Caution: " + CAUTION,
+        ]
+        return "\n".join(lines)
+
+    def __str__(self) -> str:
+        return self._summary_text(self.comparison())
+
+    def _repr_html_(self) -> str:
+        table = self.comparison()
+        head = html.escape(f"stackdr: {self.target.description} (n = {self.data.n})")
+        return f"<div><strong>{head}</strong>{table.to_html(index=False, escape=True)}</div>"
+
+    def attach_bootstrap(self, boot) -> None:
+        """Replace the Wald intervals by the bootstrap's, estimator by estimator."""
+        self.bootstrap = boot
+        for row in self.estimators:
+            if row.name in boot.intervals:
+                row.low, row.high = boot.intervals[row.name]
+                row.interval_method = boot.method
+                row.bootstrap_se = boot.standard_errors[row.name]
+
+
+def _weights_text(names, weights) -> str:
+    return ", ".join(f"{n} {w:.2f}" for n, w in zip(names, weights) if w > 5e-3)
