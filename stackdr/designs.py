@@ -22,6 +22,8 @@ import numpy as np
 import pandas as pd
 from scipy.special import expit
 
+from stackdr.errors import InputError
+
 TARGETS = ("mean1", "mean0", "ate", "att", "cov")
 
 
@@ -74,7 +76,7 @@ class DesignData:
             ("covariate", c) for c in self.covariates
         ]:
             if column not in self.frame.columns:
-                raise ValueError(
+                raise InputError(
                     f"{role} column {column!r} is not in the frame "
                     f"(columns: {list(self.frame.columns)})"
                 )
@@ -84,12 +86,12 @@ class DesignData:
         if self.true_propensity is not None:
             self.true_propensity = np.asarray(self.true_propensity, dtype=float)
             if self.true_propensity.shape != (n,):
-                raise ValueError(
+                raise InputError(
                     f"true_propensity has shape {self.true_propensity.shape}, expected ({n},)"
                 )
         if self.true_outcome is not None:
             if set(self.true_outcome) != {0, 1}:
-                raise ValueError(
+                raise InputError(
                     f"true_outcome must have keys 0 and 1, got {sorted(self.true_outcome)}"
                 )
             self.true_outcome = {
@@ -97,7 +99,7 @@ class DesignData:
             }
             for a, values in self.true_outcome.items():
                 if values.shape != (n,):
-                    raise ValueError(f"true_outcome[{a}] has shape {values.shape}, expected ({n},)")
+                    raise InputError(f"true_outcome[{a}] has shape {values.shape}, expected ({n},)")
 
 
 @dataclass(frozen=True)
@@ -139,7 +141,7 @@ class Design:
         DesignData
         """
         if isinstance(n, bool) or not isinstance(n, (int, np.integer)) or n < 1:
-            raise ValueError(f"n must be a positive integer, got {n!r}")
+            raise InputError(f"n must be a positive integer, got {n!r}")
         if not isinstance(rng, np.random.Generator):
             raise TypeError(
                 f"rng must be a numpy.random.Generator (e.g. numpy.random.default_rng(seed)), "
@@ -151,9 +153,9 @@ class Design:
                 f"design {self.name!r} returned {type(data).__name__}, expected DesignData"
             )
         if len(data.frame) != n:
-            raise ValueError(f"design {self.name!r} returned {len(data.frame)} rows, asked for {n}")
+            raise InputError(f"design {self.name!r} returned {len(data.frame)} rows, asked for {n}")
         if data.target != self.target:
-            raise ValueError(
+            raise InputError(
                 f"design {self.name!r} is registered with target {self.target!r} "
                 f"but returned data with target {data.target!r}"
             )
@@ -162,7 +164,7 @@ class Design:
 
 def _check_target(target: str) -> None:
     if target not in TARGETS:
-        raise ValueError(f"unknown target {target!r}; valid targets: {', '.join(TARGETS)}")
+        raise InputError(f"unknown target {target!r}; valid targets: {', '.join(TARGETS)}")
 
 
 # ---------------------------------------------------------------------------------------------
@@ -195,7 +197,7 @@ def kang_schafer_transform(z: np.ndarray) -> np.ndarray:
     """
     z = np.asarray(z, dtype=float)
     if z.ndim != 2 or z.shape[1] != 4:
-        raise ValueError(f"z must have shape (n, 4), got {z.shape}")
+        raise InputError(f"z must have shape (n, 4), got {z.shape}")
     z1, z2, z3, z4 = z.T
     return np.column_stack(
         [
@@ -518,13 +520,13 @@ def get_design(name: str) -> Design:
 
     Raises
     ------
-    ValueError
-        If the name is unknown; the message lists the valid names.
+    stackdr.errors.InputError
+        (a ValueError) if the name is unknown; the message lists the valid names.
     """
     try:
         return _REGISTRY[name]
     except (KeyError, TypeError):
-        raise ValueError(
+        raise InputError(
             f"unknown design {name!r}; valid designs: {', '.join(list_designs())}"
         ) from None
 
@@ -570,9 +572,9 @@ def register_design(
         The registered design.
     """
     if not isinstance(name, str) or not name:
-        raise ValueError(f"design name must be a non-empty string, got {name!r}")
+        raise InputError(f"design name must be a non-empty string, got {name!r}")
     if name in _REGISTRY and not replace:
-        raise ValueError(f"design {name!r} is already registered; pass replace=True to replace it")
+        raise InputError(f"design {name!r} is already registered; pass replace=True to replace it")
     if not callable(function):
         raise TypeError(f"function for design {name!r} must be callable, got {function!r}")
     _check_target(target)
@@ -601,7 +603,7 @@ def _as_design_data(
         )
     treatment, outcome, covariates = role_names
     if treatment is None or outcome is None:
-        raise ValueError(
+        raise InputError(
             f"design {name!r} returns (frame, truth); register it with treatment= and outcome="
         )
     frame, truth = result
