@@ -31,6 +31,8 @@ from .stacking import log_losses, logloss_stack, nnls_stack, squared_error_losse
 from .targets import Target, get_target
 
 DIRECTIONS = ("all", "credible")
+BOOTSTRAP_KINDS = ("multinomial", "bayesian", "refit")
+INTERVALS = ("percentile", "basic")
 _PARAMS = (
     "target",
     "propensity_learners",
@@ -48,6 +50,9 @@ _PARAMS = (
     "on_error",
     "level",
     "bootstrap",
+    "bootstrap_kind",
+    "interval",
+    "chunk_size",
     "seed",
     "n_jobs",
     "progress",
@@ -109,7 +114,16 @@ class BlendEstimator:
     level : float
         Confidence level of intervals.
     bootstrap : int
-        Reweighting-bootstrap replicates (0 disables; Wald intervals are then reported).
+        Bootstrap replicates (default 1000; 0 disables and Wald intervals are reported).
+    bootstrap_kind : {"multinomial", "bayesian", "refit"}
+        Reweighting bootstrap with multinomial counts (default) or exponential weights, both
+        reusing the out-of-fold predictions and rerunning the weight search; or the refit
+        bootstrap, which also refits every learner (expensive, fully honest).
+    interval : {"percentile", "basic"}
+        Bootstrap interval type.
+    chunk_size : int, optional
+        Replicates per batched matrix product (default: sized to bound memory); results do not
+        depend on it.
     seed : int
         Seeds folds and bootstrap.
     n_jobs : int
@@ -136,7 +150,10 @@ class BlendEstimator:
         outcome_mode: str = "separate",
         on_error: str = "drop",
         level: float = 0.95,
-        bootstrap: int = 0,
+        bootstrap: int = 1000,
+        bootstrap_kind: str = "multinomial",
+        interval: str = "percentile",
+        chunk_size: int | None = None,
         seed: int = 0,
         n_jobs: int | None = 1,
         progress: bool = False,
@@ -157,6 +174,9 @@ class BlendEstimator:
         self.on_error = on_error
         self.level = level
         self.bootstrap = bootstrap
+        self.bootstrap_kind = bootstrap_kind
+        self.interval = interval
+        self.chunk_size = chunk_size
         self.seed = seed
         self.n_jobs = n_jobs
         self.progress = progress
@@ -180,6 +200,12 @@ class BlendEstimator:
             or (self.bootstrap < 0)
         ):
             raise InputError(f"bootstrap must be a whole number >= 0, got {self.bootstrap!r}")
+        if self.bootstrap_kind not in BOOTSTRAP_KINDS:
+            raise InputError(
+                f"bootstrap_kind must be one of {BOOTSTRAP_KINDS}, got {self.bootstrap_kind!r}"
+            )
+        if self.interval not in INTERVALS:
+            raise InputError(f"interval must be one of {INTERVALS}, got {self.interval!r}")
 
     def fit(self, data, treatment=None, outcome=None, covariates=None) -> BlendResult:
         """Validate data, cross-fit both libraries, search weights and estimate.
@@ -266,8 +292,11 @@ class BlendEstimator:
         best = loss.min()
         return loss <= best + self.direction_tolerance * abs(best)
 
-    def analyse(self, prepared: PreparedData, target: Target, cf: CrossFitResult) -> BlendResult:
-        """Everything after cross-fitting: weight search, estimates, comparison table."""
+    def analyse(
+        self, prepared: PreparedData, target: Target, cf: CrossFitResult, bootstrap: bool = True
+    ) -> BlendResult:
+        """Everything after cross-fitting: weight search, estimates, comparison table, and the
+        bootstrap when enabled (``bootstrap=False`` skips it, e.g. inside a refit replicate)."""
         t0 = time.perf_counter()
         an = self.prepare_analysis(prepared, target, cf)
         settings = an.settings
@@ -303,10 +332,17 @@ class BlendEstimator:
             settings=self._settings_record(),
             timings=timings,
         )
-        if self.bootstrap:
-            from .inference import reweighting_bootstrap
+        if bootstrap and self.bootstrap:
+            from .inference import refit_bootstrap, reweighting_bootstrap
 
-            result.attach_bootstrap(reweighting_bootstrap(self, result))
+            t1 = time.perf_counter()
+            run = refit_bootstrap if self.bootstrap_kind == "refit" else reweighting_bootstrap
+            result.attach_bootstrap(
+                run(self, result, chunk_size=self.chunk_size)
+                if run is reweighting_bootstrap
+                else run(self, result)
+            )
+            timings["bootstrap"] = time.perf_counter() - t1
         return result
 
     def _row(self, name, an: Analysis, alpha, beta, blend, kind) -> EstimatorRow:
@@ -320,25 +356,8 @@ class BlendEstimator:
         )
 
     def _settings_record(self) -> dict:
-        record = {
-            k: getattr(self, k)
-            for k in (
-                "folds",
-                "repeats",
-                "blend",
-                "criterion",
-                "tie_break",
-                "tie_break_scale",
-                "directions",
-                "direction_tolerance",
-                "clip",
-                "outcome_mode",
-                "on_error",
-                "level",
-                "bootstrap",
-                "seed",
-            )
-        }
+        skip = ("target", "propensity_learners", "outcome_learners", "n_jobs", "progress")
+        record = {k: getattr(self, k) for k in _PARAMS if k not in skip}
         if not np.isscalar(record["folds"]):
             record["folds"] = "user-supplied labels"
         record["target"] = get_target(self.target).name
