@@ -107,7 +107,7 @@ def _boosting_regressor(
 
 
 def _forest_classifier(
-    n_estimators: int = 200,
+    n_estimators: int = 100,
     min_samples_leaf: int = 5,
     max_features: float | str = "sqrt",
     random_state: int = 0,
@@ -122,7 +122,7 @@ def _forest_classifier(
 
 
 def _forest_regressor(
-    n_estimators: int = 200,
+    n_estimators: int = 100,
     min_samples_leaf: int = 5,
     max_features: float | str = 1.0,
     random_state: int = 0,
@@ -183,7 +183,7 @@ CATALOGUE: dict[str, CatalogueEntry] = {
         "classifier",
         "random forest of probability trees",
         _forest_classifier,
-        {"n_estimators": 200, "min_samples_leaf": 5, "max_features": "sqrt", "random_state": 0},
+        {"n_estimators": 100, "min_samples_leaf": 5, "max_features": "sqrt", "random_state": 0},
     ),
     "knn-classifier": CatalogueEntry(
         "classifier",
@@ -229,7 +229,7 @@ CATALOGUE: dict[str, CatalogueEntry] = {
         "regressor",
         "random forest regression",
         _forest_regressor,
-        {"n_estimators": 200, "min_samples_leaf": 5, "max_features": 1.0, "random_state": 0},
+        {"n_estimators": 100, "min_samples_leaf": 5, "max_features": 1.0, "random_state": 0},
     ),
     "knn-regressor": CatalogueEntry(
         "regressor",
