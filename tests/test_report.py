@@ -9,10 +9,13 @@ import sys
 from html.parser import HTMLParser
 
 import numpy as np
+import pandas as pd
 import pytest
 from matplotlib.contour import ContourSet
+from sklearn.dummy import DummyRegressor
+from sklearn.linear_model import LinearRegression, Ridge
 
-from stackdr import InputError
+from stackdr import BlendEstimator, InputError
 from stackdr.figures import (
     edge_slices,
     figure_style,
@@ -24,6 +27,7 @@ from stackdr.figures import (
 )
 from stackdr.report import SECTIONS, write_report
 from stackdr.serialise import result_to_dict, write_results_json
+from tests.helpers import confounded_data
 from tests.test_serialise import MATH, SCRIPT, SHELL, small_fit
 
 # MATH has no HTML-special characters; it checks that figures escape mathtext instead.
@@ -198,3 +202,28 @@ def test_landscape_ternary_for_three_learners_and_edges_for_two(results, report_
     assert "Propensity side (3 learners): a ternary map" in page
     assert "Outcome side (2 learners): edge slices" in page
     assert "linear (riesz) blend" in page
+
+
+def test_continuous_treatment_and_ternary_outcome_side(tmp_path):
+    rng = np.random.default_rng(11)
+    X, _, Y, _ = confounded_data(rng, 300)
+    frame = pd.DataFrame({"x1": X[:, 0], "x2": X[:, 1], "x3": X[:, 2], "y": Y})
+    frame["dose"] = X[:, 0] + rng.normal(size=300)
+    outcome = {"linear": LinearRegression(), "mean": DummyRegressor(), "ridge": Ridge(alpha=30.0)}
+    propensity = {"linear": LinearRegression(), "mean": DummyRegressor()}
+    fit = BlendEstimator("cov", propensity, outcome, folds=3, bootstrap=0).fit(frame, "dose", "y")
+    d = result_to_dict(fit)
+    diag = d["diagnostics"]
+    assert diag["propensity_kind"] == "regressor"
+    assert diag["overlap_histogram"] is None and diag["effective_sample_size"] is None
+    write_report(d, tmp_path)
+    page = (tmp_path / "report.html").read_text(encoding="utf-8")
+    assert "The treatment is not binary" in page
+    assert "Outcome side (3 learners): a ternary map" in page
+    assert "Propensity side (2 learners): edge slices" in page
+    assert not (tmp_path / "figures" / "overlap.png").exists()
+    assert len(parse(page).images) == len(list((tmp_path / "figures").glob("*.png"))) == 5
+    with figure_style():
+        fig = landscape(d)
+    assert any(isinstance(c, ContourSet) for c in fig.axes[1].collections)
+    assert len(fig.axes[0].get_lines()) == 1
