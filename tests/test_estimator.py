@@ -40,7 +40,9 @@ def test_oracle_learners_receive_the_mass():
     # outcome-direction sensitivity there is near zero, and the pure minimiser sits near the truth.
     X, A, Y, _ = confounded_data(np.random.default_rng(3), 4000)
     prop, outc = oracle_libraries()
-    est = BlendEstimator("ate", prop, outc, folds=2, outcome_mode="pooled", tie_break=False)
+    est = BlendEstimator(
+        "ate", prop, outc, folds=2, outcome_mode="pooled", tie_break=False, bootstrap=0
+    )
     res = est.fit(X, A, Y)
     Psi = res.pair_table.to_numpy()
     se = res.pair_standard_errors.to_numpy()
@@ -59,9 +61,9 @@ def test_permuting_learners_permutes_weights():
         "sharp": LogisticRegression(C=100.0),
     }
     outc = {"ols": LinearRegression(), "ridge": Ridge(alpha=50.0), "mean": DummyRegressor()}
-    a = BlendEstimator("ate", prop, outc, seed=2).fit(X, A, Y)
+    a = BlendEstimator("ate", prop, outc, seed=2, bootstrap=0).fit(X, A, Y)
     b = BlendEstimator(
-        "ate", dict(reversed(prop.items())), dict(reversed(outc.items())), seed=2
+        "ate", dict(reversed(prop.items())), dict(reversed(outc.items())), seed=2, bootstrap=0
     ).fit(X, A, Y)
     assert b.estimate == pytest.approx(a.estimate, abs=1e-7)
     pd.testing.assert_series_equal(b.alpha[a.alpha.index], a.alpha, atol=1e-6)
@@ -72,7 +74,7 @@ def test_comparison_table_and_summary(capsys):
     X, A, Y, _ = confounded_data(np.random.default_rng(6), 500)
     prop = {"logit": LogisticRegression(), "flat": DummyClassifier(strategy="prior")}
     outc = {"ols": LinearRegression(), "mean": DummyRegressor()}
-    res = BlendEstimator("att", prop, outc).fit(X, A, Y)
+    res = BlendEstimator("att", prop, outc, bootstrap=0).fit(X, A, Y)
     table = res.summary()
     printed = capsys.readouterr().out
     assert "target-aimed stacking" in printed and "Caution" in printed
@@ -97,7 +99,9 @@ def test_blends_and_criteria_run(blend, criterion):
     X, A, Y, _ = confounded_data(np.random.default_rng(8), 400)
     prop = {"logit": LogisticRegression(), "flat": DummyClassifier(strategy="prior")}
     outc = {"ols": LinearRegression(), "mean": DummyRegressor()}
-    res = BlendEstimator("ate", prop, outc, blend=blend, criterion=criterion).fit(X, A, Y)
+    res = BlendEstimator("ate", prop, outc, blend=blend, criterion=criterion, bootstrap=0).fit(
+        X, A, Y
+    )
     assert np.isfinite(res.estimate) and res.se > 0
     assert res.beta.sum() == pytest.approx(1.0)
 
@@ -120,8 +124,8 @@ def test_user_defined_target_matches_built_in():
     )
     prop = {"logit": LogisticRegression()}
     outc = {"ols": LinearRegression()}
-    a = BlendEstimator(mine, prop, outc, seed=1).fit(X, A, Y)
-    b = BlendEstimator("mean1", prop, outc, seed=1).fit(X, A, Y)
+    a = BlendEstimator(mine, prop, outc, seed=1, bootstrap=0).fit(X, A, Y)
+    b = BlendEstimator("mean1", prop, outc, seed=1, bootstrap=0).fit(X, A, Y)
     assert a.estimate == pytest.approx(b.estimate, rel=1e-12)
 
 
@@ -129,7 +133,7 @@ def test_repeated_splits_and_bad_settings():
     X, A, Y, _ = confounded_data(np.random.default_rng(10), 300)
     prop = {"logit": LogisticRegression()}
     outc = {"ols": LinearRegression(), "mean": DummyRegressor()}
-    res = BlendEstimator("ate", prop, outc, repeats=3).fit(X, A, Y)
+    res = BlendEstimator("ate", prop, outc, repeats=3, bootstrap=0).fit(X, A, Y)
     assert res.crossfit.repeats == 3 and np.isfinite(res.estimate)
     with pytest.raises(InputError, match="unknown blend 'linear'"):
         BlendEstimator("ate", prop, outc, blend="linear").fit(X, A, Y)

@@ -158,13 +158,21 @@ def test_row_order_invariance_with_moving_folds(rng):
 
 
 def test_same_seed_same_numbers_for_any_n_jobs(rng):
-    X, A, Y, _ = confounded_data(rng, 300)
-    from stackdr.learners import default_outcome_library, default_propensity_library
+    from stackdr.learners import make_learner
 
-    Psi1, _ = _fit(
-        X, A, Y, "ate", default_propensity_library(), default_outcome_library(), seed=9, n_jobs=1
-    )
-    Psi2, _ = _fit(
-        X, A, Y, "ate", default_propensity_library(), default_outcome_library(), seed=9, n_jobs=2
-    )
+    X, A, Y, _ = confounded_data(rng, 300)
+
+    def libs():
+        prop = {
+            "logit": LogisticRegression(),
+            "forest": make_learner("forest-classifier", n_estimators=20),
+        }
+        outc = {
+            "ols": LinearRegression(),
+            "forest": make_learner("forest-regressor", n_estimators=20),
+        }
+        return prop, outc
+
+    Psi1, _ = _fit(X, A, Y, "ate", *libs(), seed=9, n_jobs=1)
+    Psi2, _ = _fit(X, A, Y, "ate", *libs(), seed=9, n_jobs=2)
     np.testing.assert_array_equal(Psi1, Psi2)
