@@ -25,6 +25,7 @@ from .pairtable import (
     pair_table,
     phi,
 )
+from .parallel import check_cluster, dask_jobs, parallel_backend
 from .results import BlendResult, EstimatorRow
 from .selection import SearchSettings, discrete_pairs, pseudo_risk, pure_weights, run_search
 from .stacking import log_losses, logloss_stack, nnls_stack, squared_error_losses
@@ -56,6 +57,18 @@ _PARAMS = (
     "seed",
     "n_jobs",
     "progress",
+    "backend",
+    "cluster",
+)
+# Settings left out of a result's record: objects, and where the work ran (not what it did).
+_NOT_RECORDED = (
+    "target",
+    "propensity_learners",
+    "outcome_learners",
+    "n_jobs",
+    "progress",
+    "backend",
+    "cluster",
 )
 MAIN = "target-aimed stacking"
 PURE = "target-aimed, no tie-break"
@@ -130,6 +143,13 @@ class BlendEstimator:
         joblib workers for learner fits.
     progress : bool
         Show progress bars.
+    backend : None or "dask"
+        "dask" runs the learner fits and the refit bootstrap on a dask.distributed cluster
+        through joblib's dask backend; results are identical to a local run with the same seed.
+    cluster : None, str, int or distributed.Client
+        With ``backend="dask"``: scheduler address, number of workers of a local cluster to
+        start for each fit, or an existing client (default: the current client, else a local
+        cluster of ``n_jobs`` workers).
     """
 
     def __init__(
@@ -157,6 +177,8 @@ class BlendEstimator:
         seed: int = 0,
         n_jobs: int | None = 1,
         progress: bool = False,
+        backend: str | None = None,
+        cluster=None,
     ):
         self.target = target
         self.propensity_learners = propensity_learners
@@ -180,6 +202,8 @@ class BlendEstimator:
         self.seed = seed
         self.n_jobs = n_jobs
         self.progress = progress
+        self.backend = backend
+        self.cluster = cluster
 
     def get_params(self) -> dict:
         """Constructor settings as a dict."""
@@ -206,6 +230,7 @@ class BlendEstimator:
             )
         if self.interval not in INTERVALS:
             raise InputError(f"interval must be one of {INTERVALS}, got {self.interval!r}")
+        check_cluster(self.backend, self.cluster)
 
     def fit(self, data, treatment=None, outcome=None, covariates=None) -> BlendResult:
         """Validate data, cross-fit both libraries, search weights and estimate.
@@ -224,20 +249,22 @@ class BlendEstimator:
             data, treatment, outcome, covariates, target=target, folds=int(n_folds)
         )
         plib, olib = self._libraries(prepared)
-        cf = cross_fit(
-            prepared,
-            target,
-            plib,
-            olib,
-            folds=self.folds,
-            repeats=self.repeats,
-            seed=self.seed,
-            clip=self.clip,
-            outcome_mode=self.outcome_mode,
-            on_error=self.on_error,
-            n_jobs=self.n_jobs,
-            progress=self.progress,
-        )
+        # --- backend/cluster: learner fits run where the backend setting says.
+        with parallel_backend(self.backend, self.cluster, self.n_jobs or 1):
+            cf = cross_fit(
+                prepared,
+                target,
+                plib,
+                olib,
+                folds=self.folds,
+                repeats=self.repeats,
+                seed=self.seed,
+                clip=self.clip,
+                outcome_mode=self.outcome_mode,
+                on_error=self.on_error,
+                n_jobs=dask_jobs(self.n_jobs) if self.backend == "dask" else self.n_jobs,
+                progress=self.progress,
+            )
         fit_seconds = time.perf_counter() - start
         result = self.analyse(prepared, target, cf)
         result.timings["cross_fit"] = fit_seconds
@@ -336,12 +363,19 @@ class BlendEstimator:
             from .inference import refit_bootstrap, reweighting_bootstrap
 
             t1 = time.perf_counter()
-            run = refit_bootstrap if self.bootstrap_kind == "refit" else reweighting_bootstrap
-            result.attach_bootstrap(
-                run(self, result, chunk_size=self.chunk_size)
-                if run is reweighting_bootstrap
-                else run(self, result)
-            )
+            if self.bootstrap_kind == "refit":
+                # --- backend/cluster: replicates go to the cluster; the copy they carry has no
+                # client (a client does not travel to workers) and runs its fits in place.
+                local = BlendEstimator(**{**self.get_params(), "backend": None, "cluster": None})
+                with parallel_backend(self.backend, self.cluster, self.n_jobs or 1):
+                    boot = refit_bootstrap(
+                        local,
+                        result,
+                        n_jobs=dask_jobs(self.n_jobs) if self.backend == "dask" else None,
+                    )
+            else:
+                boot = reweighting_bootstrap(self, result, chunk_size=self.chunk_size)
+            result.attach_bootstrap(boot)
             timings["bootstrap"] = time.perf_counter() - t1
         return result
 
@@ -356,8 +390,7 @@ class BlendEstimator:
         )
 
     def _settings_record(self) -> dict:
-        skip = ("target", "propensity_learners", "outcome_learners", "n_jobs", "progress")
-        record = {k: getattr(self, k) for k in _PARAMS if k not in skip}
+        record = {k: getattr(self, k) for k in _PARAMS if k not in _NOT_RECORDED}
         if not np.isscalar(record["folds"]):
             record["folds"] = "user-supplied labels"
         record["target"] = get_target(self.target).name

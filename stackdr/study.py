@@ -32,7 +32,7 @@ import math
 import sqlite3
 import time
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
-from contextlib import closing, contextmanager, nullcontext
+from contextlib import closing, nullcontext
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
@@ -40,11 +40,12 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from joblib import Parallel, delayed, parallel_config
+from joblib import Parallel, delayed
 from tqdm import tqdm
 
 from stackdr.designs import Design, DesignData, get_design
 from stackdr.errors import InputError, StackdrError
+from stackdr.parallel import check_cluster, dask_backend, dask_jobs
 
 FORMAT = "stackdr-study/1"
 STANDARD_FIELDS = ("name", "estimate", "se", "low", "high", "weights")
@@ -393,38 +394,6 @@ def _resolve_sizes(ns: int | Iterable[int]) -> list[int]:
     return [int(n) for n in sizes]
 
 
-@contextmanager
-def _dask_backend(cluster: Any, jobs: int) -> Iterator[None]:
-    from distributed import Client, LocalCluster, get_client
-
-    owned: list[Any] = []
-    if cluster is None:
-        try:
-            cluster = get_client()
-        except ValueError:  # no current client: start a local cluster
-            cluster = max(jobs, 1)
-    if isinstance(cluster, Client):
-        client = cluster
-    elif isinstance(cluster, str):
-        client = Client(cluster, set_as_default=False)
-        owned.append(client)
-    elif _is_count(cluster, 1):
-        local = LocalCluster(n_workers=int(cluster), threads_per_worker=1, dashboard_address=":0")
-        client = Client(local, set_as_default=False)
-        owned += [client, local]
-    else:
-        raise InputError(
-            "cluster must be a scheduler address (str), a positive local cluster size (int) or a "
-            f"distributed.Client, got {cluster!r}"
-        )
-    try:
-        with parallel_config(backend="dask", client=client):
-            yield
-    finally:
-        for resource in owned:
-            resource.close()
-
-
 def run_study(
     path: str | Path,
     designs: str | Design | Sequence[str | Design],
@@ -505,6 +474,8 @@ def run_study(
         raise InputError(f"jobs must be a non-zero integer, got {jobs!r}")
     if cluster is not None and backend != "dask":
         raise InputError("cluster is only used with backend='dask'")
+    if backend == "dask":
+        check_cluster(backend, cluster)
     replicate_seeds(seed, "", 0, 0)  # validates the seed before any file is touched
     settings = {} if settings is None else settings
     if not isinstance(settings, Mapping):
@@ -551,8 +522,7 @@ def _execute(
             yield _run_replicate(*task)
         return
     if backend == "dask":
-        # joblib's dask backend sizes itself to the cluster when n_jobs is -1.
-        context, backend, jobs = _dask_backend(cluster, jobs), None, jobs if jobs > 1 else -1
+        context, backend, jobs = dask_backend(cluster, jobs), None, dask_jobs(jobs)
     else:
         context = nullcontext()
     with context:
