@@ -22,6 +22,7 @@ from pathlib import Path
 import pandas as pd
 
 from . import __version__
+from .cli_study import register as register_study
 from .config import SETTINGS, estimator_kwargs, load_config, resolve_settings
 from .errors import InputError, StackdrError
 from .estimator import BOOTSTRAP_KINDS
@@ -483,7 +484,7 @@ def register(subparsers) -> None:
 
 # Command groups: each is a register(subparsers) function. A further group (for example the
 # simulation commands) is added by importing its register function here and listing it below.
-COMMAND_GROUPS = (register,)
+COMMAND_GROUPS = (register, register_study)
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -34,6 +34,9 @@ MEASURES = (
 )
 
 
+_NUMERIC_CELL = r"[-+0-9.eE%() ]*|nan|inf"
+
+
 def _number(value: float, digits: int = 4) -> str:
     if value is None or (isinstance(value, float) and math.isnan(value)):
         return "-"
@@ -72,7 +75,8 @@ def text_table(frame: pd.DataFrame) -> str:
     """Aligned plain-text rendering of a table of strings (first columns left-aligned)."""
     cells = frame.astype(str)
     widths = {c: max(len(str(c)), *(len(v) for v in cells[c])) for c in cells.columns}
-    left = {c for c in cells.columns if c in ("design", "estimator", "library", "setting")}
+    # Words read best left-aligned, numbers (with their MC SE in parentheses) right-aligned.
+    left = {c for c in cells.columns if not cells[c].str.fullmatch(_NUMERIC_CELL).all()}
 
     def fmt(c, v):
         return v.ljust(widths[c]) if c in left else v.rjust(widths[c])
