@@ -4,7 +4,9 @@ Simulated data with a known true average effect (-4.0 mmHg): fit both default li
 the comparison table, the chosen weights of each library and the pair table.
 
     python examples/demo_scenario.py            # n = 2000, 1000 bootstrap replicates
-    python examples/demo_scenario.py --small    # n = 400, 50 replicates (STACKDR_EXAMPLE_SMALL=1)
+    python examples/demo_scenario.py --small    # n = 400, 3 folds, 50 replicates
+
+Setting STACKDR_EXAMPLE_SMALL=1 has the same effect as --small.
 """
 
 from __future__ import annotations
@@ -20,7 +22,11 @@ def main(small: bool = False) -> None:
     frame, truth = simulate_demo(n=400 if small else 2000)
     print(DESCRIPTION)
     estimator = BlendEstimator(
-        "ate", bootstrap=50 if small else 1000, n_jobs=1 if small else 2, seed=0
+        "ate",
+        folds=3 if small else 5,
+        bootstrap=50 if small else 1000,
+        n_jobs=1 if small else 2,
+        seed=0,
     )
     result = estimator.fit(frame, treatment="programme", outcome="sbp_change")
     result.summary()

@@ -99,7 +99,9 @@ def main(table_path: str | None = None, small: bool = False) -> None:
         print(f"Nuisances read from {table_path}")
     else:
         frame, truth = simulate_demo(n=400 if small else 2000)
-        estimator = BlendEstimator("ate", bootstrap=0, n_jobs=1 if small else 2, seed=0)
+        estimator = BlendEstimator(
+            "ate", folds=3 if small else 5, bootstrap=0, n_jobs=1 if small else 2, seed=0
+        )
         result = estimator.fit(frame, "programme", "sbp_change")
         table = blended_nuisances(result)
         tool = result.estimate
