@@ -243,7 +243,8 @@ def cross_fit(
     outc = {name: {h: np.full((R, n), np.nan) for h in heads} for name in outcome_library}
     failures: dict[str, str] = {}
     seconds: dict[str, float] = {}
-    for (side, name, r, test, unit_heads), (preds, secs, err) in zip(keys, results):
+    # results first: the progress bar only closes when its generator is exhausted.
+    for (preds, secs, err), (side, name, r, test, unit_heads) in zip(results, keys):
         key = f"{side}:{name}"
         seconds[key] = seconds.get(key, 0.0) + secs
         if err is not None:
