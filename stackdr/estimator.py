@@ -432,30 +432,42 @@ def prediction_losses_and_stacking(prepared: PreparedData, cf: CrossFitResult):
     return {"propensity": prop_loss, "outcome": out_loss}, alpha, beta
 
 
+# Values within this fraction of the pair table's spread count as tied for the largest or the
+# smallest: about the accuracy of the LP optimum, so round-off never decides which contrast sets
+# the noise floor.
+_TIE_FRACTION = 1e-9
+
+
 def noise_floor_function(an: Analysis, settings: SearchSettings):
     """tau(side, weights) = c x SE of the pair contrast that attains the sensitivity range at
-    those weights (first repetition's rows)."""
+    those weights (first repetition's rows). When several learners tie for the largest or the
+    smallest value (a zero range ties them all), the largest SE among the tied contrasts is
+    used, so the result depends neither on learner order nor on round-off."""
     inp = an.inputs[0]
     K1, K2 = an.Psi.shape
     blend = settings.blend
     phi_fn = _phi_function(an.inputs, blend)
+    tie = _TIE_FRACTION * float(np.ptp(an.Psi))
 
-    def extremes(values, mask):
+    def extreme_pairs(values, mask):
         idx = np.arange(values.size) if mask is None else np.flatnonzero(mask)
         sub = values[idx]
-        return idx[int(np.argmax(sub))], idx[int(np.argmin(sub))]
+        top, bottom = idx[sub >= sub.max() - tie], idx[sub <= sub.min() + tie]
+        return {tuple(sorted((h, l))) for h in top for l in bottom if h != l}
 
     def tolerance(side: str, weights: np.ndarray) -> float:
         weights = np.asarray(weights, dtype=float)
         if side == "propensity":
-            hi, lo = extremes(phi_fn(weights[None])[0], an.masks[1])
-            first, second = (weights, np.eye(K2)[hi]), (weights, np.eye(K2)[lo])
+            pairs = extreme_pairs(phi_fn(weights[None])[0], an.masks[1])
+            ends = [((weights, np.eye(K2)[h]), (weights, np.eye(K2)[lo])) for h, lo in pairs]
         else:
-            hi, lo = extremes(an.Psi @ weights, an.masks[0])
-            first, second = (np.eye(K1)[hi], weights), (np.eye(K1)[lo], weights)
-        if hi == lo:
+            pairs = extreme_pairs(an.Psi @ weights, an.masks[0])
+            ends = [((np.eye(K1)[h], weights), (np.eye(K1)[lo], weights)) for h, lo in pairs]
+        if not ends:
             return 0.0
-        return settings.tie_break_scale * contrast_standard_error(inp, first, second, blend)
+        return settings.tie_break_scale * max(
+            contrast_standard_error(inp, first, second, blend) for first, second in ends
+        )
 
     return tolerance
 
