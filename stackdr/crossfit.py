@@ -16,7 +16,7 @@ from sklearn.base import clone
 from sklearn.model_selection import KFold, StratifiedKFold
 
 from .data import PreparedData
-from .errors import InputError, LearnerError
+from .errors import InputError, LearnerError, PositivityWarning
 from .targets import Target
 
 
@@ -118,8 +118,11 @@ def _predict(est, X, kind):
     if kind == "classifier":
         proba = np.asarray(est.predict_proba(X))
         classes = list(getattr(est, "classes_", [0, 1]))
-        if proba.ndim != 2 or proba.shape[0] != X.shape[0] or 1 not in classes:
-            raise ValueError(f"predict_proba returned shape {proba.shape}")
+        if proba.shape != (X.shape[0], len(classes)) or 1 not in classes:
+            raise ValueError(
+                f"predict_proba returned shape {proba.shape} for {X.shape[0]} rows and classes "
+                f"{np.asarray(classes).tolist()}"
+            )
         return proba[:, classes.index(1)]
     return np.asarray(est.predict(X), dtype=float).reshape(-1)
 
@@ -273,6 +276,7 @@ def cross_fit(
         low, high = raw < clip, raw > 1 - clip
         clip_counts = np.stack([low.sum(axis=1), high.sum(axis=1)], axis=-1)
         clipped = np.clip(raw, clip, 1 - clip)
+        _warn_clipping(clip_counts, prop_names, n, clip)
     else:
         clip_counts = np.zeros((R, len(prop_names), 2), dtype=np.int64)
         clipped = raw.copy()
@@ -294,6 +298,23 @@ def cross_fit(
         outcome_mode=outcome_mode,
         failures=failures,
         fit_seconds=seconds,
+    )
+
+
+def _warn_clipping(clip_counts: np.ndarray, names: list, n: int, clip: float) -> None:
+    """One warning naming every learner whose out-of-fold propensities were clipped, with the
+    share of rows (mean over repetitions), largest first."""
+    shares = clip_counts.sum(axis=-1).mean(axis=0) / n
+    order = [k for k in np.argsort(-shares, kind="stable") if shares[k] > 0]
+    if not order:
+        return
+    listed = ", ".join(f"{names[k]!r} {100 * shares[k]:.1f}% of rows" for k in order)
+    warnings.warn(
+        f"positivity: propensities outside [{clip:g}, {1 - clip:g}] were clipped for "
+        f"{len(order)} of {len(names)} propensity learners ({listed}); overlap between the "
+        "arms is in doubt for those rows and their estimates lean on the clipping bound",
+        PositivityWarning,
+        stacklevel=3,
     )
 
 

@@ -12,3 +12,7 @@ class InputError(StackdrError, ValueError):
 
 class LearnerError(StackdrError, RuntimeError):
     """A learner failed in a way that leaves a library unusable."""
+
+
+class PositivityWarning(UserWarning):
+    """Propensities reached the clipping bounds: overlap between the arms is in doubt."""
