@@ -32,8 +32,14 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 import pandas as pd  # noqa: E402
 
 from stackdr.simulation import make_replicate  # noqa: E402
-from stackdr.study import paired_differences, run_study, summarise_study  # noqa: E402
-from stackdr.study_report import markdown_table, summary_text, text_table, with_mcse  # noqa: E402
+from stackdr.study import paired_differences, read_results, run_study, summarise_study  # noqa: E402
+from stackdr.study_report import (  # noqa: E402
+    markdown_table,
+    ordered,
+    summary_text,
+    text_table,
+    with_mcse,
+)  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parent / "results"
 DESIGNS = ["kang-schafer-transformed", "kang-schafer-ate-transformed"]
@@ -82,8 +88,30 @@ def paired_table(path: Path, setting: str, other: str = MAIN) -> pd.DataFrame:
     return paired
 
 
+def tie_break_table(summary: pd.DataFrame, moved: list[pd.DataFrame]) -> pd.DataFrame:
+    """Target-aimed stacking under c = 0, 0.5 and 1 with the parametric libraries."""
+    scales = {"parametric-c0": 0.0, "parametric": 0.5, "parametric-c1": 1.0}
+    rows = summary[summary["setting"].isin(list(scales)) & (summary["estimator"] == MAIN)]
+    rows = rows.merge(pd.concat(moved), on=["setting", "design", "n"], how="left")
+    rows = rows.assign(c=rows["setting"].map(scales)).sort_values(["design", "n", "c"])
+    return pd.DataFrame(
+        {
+            "design": rows["design"],
+            "n": rows["n"],
+            "c": rows["c"],
+            "reps": rows["reps"],
+            "bias": [with_mcse(v, s) for v, s in zip(rows["bias"], rows["bias_mcse"])],
+            "RMSE": [with_mcse(v, s) for v, s in zip(rows["rmse"], rows["rmse_mcse"])],
+            "coverage": [
+                with_mcse(v, s, 3) for v, s in zip(rows["coverage"], rows["coverage_mcse"])
+            ],
+            "moved": rows["moved"].map(lambda v: f"{v:.2f}"),
+        }
+    )
+
+
 def report() -> None:
-    summaries, paired = [], []
+    summaries, paired, moved = [], [], []
     for setting in SETTINGS:
         path = study_path(setting)
         if not path.exists():
@@ -93,6 +121,9 @@ def report() -> None:
             continue
         summary.insert(0, "setting", setting)
         summaries.append(summary)
+        main_rows = read_results(path).query("estimator == @MAIN")
+        shares = main_rows.groupby(["design", "n"])["tie_break_moved"].mean()
+        moved.append(shares.rename("moved").reset_index().assign(setting=setting))
         paired.append(paired_table(path, setting))
         paired.append(paired_table(path, setting, PURE))
     if not summaries:
@@ -135,9 +166,24 @@ def report() -> None:
             ],
         }
     )
-    lines += [markdown_table(shown), "", "## Performance per estimator", ""]
+    lines += [markdown_table(shown), ""]
+    c_table = tie_break_table(summary, moved)
+    if not c_table.empty:
+        lines += [
+            "## Tie-break constant c (parametric libraries, target-aimed stacking)",
+            "",
+            "c = 0 keeps only exact ties (closest to the prediction-loss weights among exact "
+            "minimisers); `moved` is the share of replicates where the tie-break changed the "
+            "pure minimiser's weights.",
+            "",
+            markdown_table(c_table),
+            "",
+        ]
+        print(text_table(c_table))
+    lines += ["## Performance per estimator", ""]
     for setting, group in summary.groupby("setting", sort=False):
-        lines += [f"### {setting}", "", "```", summary_text(group.drop(columns="setting")), "```"]
+        table = summary_text(ordered(group.drop(columns="setting")))
+        lines += [f"### {setting}", "", "```", table, "```"]
         lines.append("")
     (RESULTS / "study_kang_schafer.md").write_text("\n".join(lines))
     print(text_table(shown))
