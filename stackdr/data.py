@@ -5,7 +5,9 @@ Later layers trust what comes out of :func:`prepare_data`.
 
 from __future__ import annotations
 
+import contextlib
 import logging
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -15,6 +17,11 @@ from .errors import InputError
 from .targets import Target
 
 log = logging.getLogger("stackdr")
+
+# Outcomes (and continuous treatments) must lie within these magnitudes: standard errors square
+# the values, and squares of larger or smaller numbers overflow or underflow double precision.
+LARGEST_MAGNITUDE = 1e100
+SMALLEST_MAGNITUDE = 1e-100
 
 
 @dataclass(frozen=True)
@@ -61,6 +68,8 @@ class PreparedData:
 
 def _describe_values(values: np.ndarray, limit: int = 8) -> str:
     uniq = pd.unique(pd.Series(values).dropna())
+    with contextlib.suppress(TypeError):  # sorted when comparable, so messages are stable
+        uniq = sorted(uniq)
     shown = ", ".join(repr(v.item() if hasattr(v, "item") else v) for v in uniq[:limit])
     more = f" (and {len(uniq) - limit} more)" if len(uniq) > limit else ""
     return shown + more
@@ -210,6 +219,15 @@ def prepare_data(
         )
     if np.isinf(Y[needed]).any():
         raise InputError(f"outcome column {y_name!r} has infinite values")
+    _check_magnitude(Y[needed], "outcome", y_name)
+    if np.ptp(Y[needed]) == 0:
+        warnings.warn(
+            f"outcome column {y_name!r} is constant ({Y[needed][0]:g}) in the rows the target "
+            "uses: every learner predicts it exactly, so the estimate is that trivial value "
+            "with standard error 0; check that this is the intended column",
+            UserWarning,
+            stacklevel=2,
+        )
     Y = np.where(needed, Y, 0.0)
     X, cov_names = _covariate_frame(x_frame, notes)
     return PreparedData(X, A, Y, cov_names, str(t_name), str(y_name), notes)
@@ -252,6 +270,17 @@ def _treatment_vector(values, name: str, target: Target, folds: int) -> np.ndarr
     A = _numeric_vector(series, "treatment", name)
     if not np.isfinite(A).all():
         raise InputError(f"treatment column {name!r} has infinite values")
+    _check_magnitude(A, "treatment", name)
     if np.unique(A).size < 2:
         raise InputError(f"treatment column {name!r} is constant")
     return A
+
+
+def _check_magnitude(values: np.ndarray, role: str, name: str) -> None:
+    largest = float(np.abs(values).max())
+    if largest > LARGEST_MAGNITUDE or 0 < largest < SMALLEST_MAGNITUDE:
+        raise InputError(
+            f"{role} column {name!r} has values of magnitude up to {largest:.3g}; rescale it so "
+            f"its largest value lies between {SMALLEST_MAGNITUDE:g} and {LARGEST_MAGNITUDE:g} "
+            "(squares of such numbers leave double precision)"
+        )
