@@ -123,6 +123,17 @@ def read_table(path: str | Path) -> pd.DataFrame:
         if not text.strip():
             raise InputError(f"{label} is empty")
         delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text[:65536])
+        # pandas renames a repeated header ("x", "x.1") silently; a repeated name is ambiguous.
+        try:
+            first = next(csv.reader(io.StringIO(text), delimiter=delimiter))
+        except csv.Error as exc:
+            raise InputError(f"cannot read {label} as CSV: {exc}") from None
+        header = [h.strip() for h in first]
+        repeated = sorted({h for h in header if header.count(h) > 1})
+        if repeated:
+            raise InputError(
+                f"{label} has duplicated column names: {', '.join(map(repr, repeated))}"
+            )
         try:
             frame = pd.read_csv(io.StringIO(text), sep=delimiter, skipinitialspace=True)
         except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
