@@ -9,8 +9,11 @@ weights. Peak extra memory is about ``8 n (M + chunk)`` bytes; the chunk is size
 weight block stays under ``memory_budget`` bytes, so no n x B matrix is ever formed.
 
 Approximations, stated: the log-loss stacking weights of a replicate are one projected Newton
-step from the full-sample weights (error of order of the squared weight change); the tie-break
-tolerance and the credible-direction masks are held at their full-sample values.
+step from the full-sample weights, and the prediction-loss stacking estimate (a probability-scale
+propensity blend, not bilinear in the pair table) is expanded to first order in the propensity
+weights around the full-sample weights; both errors are second order in the replicate's weight
+change. The tie-break tolerance and the credible-direction masks are held at their full-sample
+values. Non-riesz blends evaluate phi(alpha) from the weighted rows in every replicate (slow).
 
 The refit bootstrap resamples rows and reruns everything, learner fits included: expensive,
 fully honest about the learners too.
@@ -27,7 +30,6 @@ import pandas as pd
 from joblib import Parallel, delayed
 
 from .errors import InputError
-from .pairtable import blended_weight_side
 from .selection import discrete_pairs, pure_weights, run_search
 from .stacking import (
     logloss_moment_features,
@@ -120,6 +122,10 @@ class _Layout:
             ("prop_loss", K1),
             ("grad", K1),
             ("hess", K1 * K1),
+            ("pls_b", K2),
+            ("pls_ab", K1 * K2),
+            ("pls_1", 1),
+            ("pls_a", K1),
         ]
         out, start = {}, 0
         for name, size in sizes:
@@ -131,7 +137,8 @@ class _Layout:
 
 def replicate_features(inp, cf, prepared, repeat: int, stack_alpha: np.ndarray) -> np.ndarray:
     """Per-row terms (n x M) whose row-weighted sums give a replicate's pair table numerators,
-    denominator, NNLS moments, prediction losses and log-loss Newton moments."""
+    denominator, NNLS moments, prediction losses, log-loss Newton moments, and the expansion
+    terms of the prediction-loss stacking estimate (see :func:`_pls_terms`)."""
     K1, K2 = inp.shape
     n = inp.n
     layout = _Layout(K1, K2, cf.propensity_kind == "classifier")
@@ -162,7 +169,49 @@ def replicate_features(inp, cf, prepared, repeat: int, stack_alpha: np.ndarray) 
         F[:, sl["prop_loss"]] = (probs - A[:, None]) ** 2
         F[:, sl["grad"]] = probs * A[:, None]
         F[:, sl["hess"]] = (probs[:, :, None] * probs[:, None, :]).reshape(n, -1)
+    for name, values in _pls_terms(inp, stack_alpha).items():
+        F[:, sl[name]] = values.reshape(n, -1)
     return F
+
+
+def _pls_terms(inp, alpha0: np.ndarray, step: float = 1e-6) -> dict:
+    """Row terms of the prediction-loss stacking estimate, whose propensity side is the
+    probability-scale blend pi @ alpha, expanded to first order in alpha around the full-sample
+    weights alpha0: p_c(alpha) = p0_c + G_c (alpha - alpha0) with G_c = g_c'(pi @ alpha0) pi.
+    The estimate is bilinear in (1, alpha - alpha0) and beta, so a replicate needs only weighted
+    sums; the error is second order in the replicate's weight change (O(1/n)), far below the
+    sampling SD. g_c' is a central difference, so user-defined transforms work too."""
+    base = np.clip(inp.pi @ alpha0, 1e-12, 1 - 1e-12)
+    n, K2 = inp.B[0].shape
+    K1 = inp.pi.shape[1]
+    terms = {
+        "pls_b": np.zeros((n, K2)),
+        "pls_ab": np.zeros((n, K1, K2)),
+        "pls_1": inp.h4.copy(),
+        "pls_a": np.zeros((n, K1)),
+    }
+    for g, B, h1, h2, h3 in zip(inp.transforms, inp.B, inp.h1, inp.h2, inp.h3):
+        p0 = np.asarray(g(base), dtype=float)
+        slope = (np.asarray(g(base + step)) - np.asarray(g(base - step))) / (2 * step)
+        G = slope[:, None] * inp.pi
+        terms["pls_b"] += (p0 * h1 + h2)[:, None] * B
+        terms["pls_ab"] += (h1[:, None] * G)[:, :, None] * B[:, None, :]
+        terms["pls_1"] += p0 * h3
+        terms["pls_a"] += h3[:, None] * G
+    return terms
+
+
+def _pls_estimates(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, betas, alpha0):
+    """Replicate prediction-loss stacking estimates from weighted sums ``s`` (chunk x M)."""
+    da = alphas - alpha0
+    ab = s[:, sl["pls_ab"]].reshape(-1, K1, K2)
+    num = (
+        np.einsum("ck,ckj,cj->c", da, ab, betas)
+        + np.einsum("cj,cj->c", s[:, sl["pls_b"]], betas)
+        + s[:, sl["pls_1"]][:, 0]
+        + np.einsum("ck,ck->c", s[:, sl["pls_a"]], da)
+    )
+    return num / s[:, sl["d"]][:, 0]
 
 
 # ----------------------------------------------------------------------------- one chunk
@@ -199,7 +248,6 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
     betas = np.empty((len(indices), K2))
     moved = np.zeros(len(indices), dtype=bool)
     t1 = time.perf_counter()
-    pls_pairs = []
     for col in range(len(indices)):
         Psi = Psi_b[col]
         phi_fn = None
@@ -234,17 +282,11 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
                 out[name][col] = a @ Psi @ b
             else:
                 out[name][col] = phi_fn(np.asarray(a)[None])[0] @ b
-        pls_pairs.append((alpha_s[col], beta_s[col]))
     search_s = time.perf_counter() - t1
-    t2 = time.perf_counter()
-    out["prediction-loss stacking"] = _row_path_estimates(
-        inputs,
-        W,
-        np.array([p[0] for p in pls_pairs]),
-        np.array([p[1] for p in pls_pairs]),
-        "probability",
+    out["prediction-loss stacking"] = np.median(
+        np.stack([_pls_estimates(sm, sl, K1, K2, alpha_s, beta_s, an.stack_alpha) for sm in sums]),
+        axis=0,
     )
-    row_s = time.perf_counter() - t2
     return (
         indices,
         out,
@@ -254,7 +296,6 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
         {
             "moments": moments_s,
             "search": search_s,
-            "row_path": row_s,
         },
     )
 
@@ -266,20 +307,6 @@ def _weighted_phi(inputs, blend, w):
         return np.median(np.stack([phi(inp, alphas, blend, w) for inp in inputs]), axis=0)
 
     return phi_fn
-
-
-def _row_path_estimates(inputs, W, alphas, betas, blend) -> np.ndarray:
-    """Weighted DR estimates at per-replicate (alpha_b, beta_b) from row-level data, vectorised
-    over the chunk: used where the estimate is not bilinear in the pair table."""
-    per_repeat = []
-    for inp in inputs:
-        num = W.T @ inp.h4
-        p_all = blended_weight_side(inp, alphas, blend)  # list of (n, chunk)
-        for p, B, h1, h2, h3 in zip(p_all, inp.B, inp.h1, inp.h2, inp.h3):
-            b = B @ betas.T  # (n, chunk)
-            num += np.einsum("nc,nc->c", W, b * (p * h1[:, None] + h2[:, None]) + p * h3[:, None])
-        per_repeat.append(num / (W.T @ inp.d))
-    return np.median(np.stack(per_repeat), axis=0)
 
 
 # ----------------------------------------------------------------------------- driver
@@ -354,7 +381,7 @@ def reweighting_bootstrap(
     alphas = np.empty((B, an.Psi.shape[0]))
     betas = np.empty((B, an.Psi.shape[1]))
     moved = np.zeros(B, dtype=bool)
-    stage = {"features": feature_s, "moments": 0.0, "search": 0.0, "row_path": 0.0}
+    stage = {"features": feature_s, "moments": 0.0, "search": 0.0}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         for idx, out, a, b, mv, secs in run:

@@ -124,3 +124,35 @@ def test_refit_bootstrap_runs():
     assert res.bootstrap.kind == "refit" and res.bootstrap.replicates == 8
     assert np.isfinite(res.bootstrap.estimates.to_numpy()).all()
     assert res.interval_method == "percentile"
+
+
+def test_prediction_loss_expansion_matches_exact_weighted_estimate(small_fit):
+    # The replicate estimate of prediction-loss stacking uses a first-order expansion in the
+    # propensity weights; its error must be second order: far below the estimate's SE for
+    # bootstrap-sized weight changes, and shrinking ~4x when the change halves.
+    from stackdr.inference import _Layout, _pls_estimates, replicate_features
+    from stackdr.pairtable import phi
+
+    _, res = small_fit
+    an, cf = res.analysis, res.crossfit
+    inp = an.inputs[0]
+    K1, K2 = an.Psi.shape
+    F = replicate_features(inp, cf, res.data, 0, an.stack_alpha)
+    sl = _Layout(K1, K2, True).slices()
+    rng = np.random.default_rng(0)
+    w = np.bincount(rng.integers(0, inp.n, inp.n), minlength=inp.n).astype(float)
+    beta = rng.dirichlet(np.ones(K2))
+    direction = rng.normal(size=K1)
+    direction -= direction.mean()
+    errors = []
+    for size in (0.04, 0.02):
+        alpha = an.stack_alpha + size * direction / np.abs(direction).max()
+        alpha = np.clip(alpha, 0, None)
+        alpha /= alpha.sum()
+        exact = phi(inp, alpha[None], "probability", w)[0] @ beta
+        approx = _pls_estimates((w @ F)[None], sl, K1, K2, alpha[None], beta[None], an.stack_alpha)[
+            0
+        ]
+        errors.append(abs(approx - exact))
+    assert errors[0] < 0.05 * res.se
+    assert errors[1] < errors[0] / 2.5 or errors[0] < 1e-10
