@@ -42,6 +42,8 @@ CHEAP = settings(max_examples=150, deadline=None, derandomize=True, database=Non
 
 seeds = st.integers(0, 2**16)
 targets = st.sampled_from(["ate", "att", "mean1", "mean0"])
+blends = st.sampled_from(["riesz", "probability", "logit"])
+criteria = st.sampled_from(["mixed", "minimax"])
 
 
 def libraries(order: int = 1) -> tuple[dict, dict]:
@@ -162,8 +164,8 @@ def test_covariate_order_does_not_matter(seed, target, columns):
 @given(
     seed=seeds,
     target=targets,
-    blend=st.sampled_from(["riesz", "probability", "logit"]),
-    criterion=st.sampled_from(["mixed", "minimax"]),
+    blend=blends,
+    criterion=criteria,
 )
 def test_learner_order_permutes_the_weights(seed, target, blend, criterion):
     frame = data(seed)
@@ -188,8 +190,8 @@ def test_learner_order_permutes_the_weights(seed, target, blend, criterion):
 @given(
     seed=seeds,
     target=targets,
-    blend=st.sampled_from(["riesz", "probability", "logit"]),
-    criterion=st.sampled_from(["mixed", "minimax"]),
+    blend=blends,
+    criterion=criteria,
     tie_break=st.booleans(),
     n=st.integers(60, 240),
 )
@@ -222,7 +224,7 @@ pair_tables = st.tuples(st.integers(1, 6), st.integers(1, 6), seeds).map(
 
 
 @CHEAP
-@given(Psi=pair_tables, data_seed=seeds, criterion=st.sampled_from(["mixed", "minimax"]))
+@given(Psi=pair_tables, data_seed=seeds, criterion=criteria)
 def test_pseudo_risk_is_non_negative_anywhere_on_the_simplex(Psi, data_seed, criterion):
     rng = np.random.default_rng(data_seed)
     K1, K2 = Psi.shape
