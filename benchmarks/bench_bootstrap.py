@@ -137,7 +137,6 @@ def report_sizes(rows: list[dict]) -> None:
         "stage_features",
         "stage_moments",
         "stage_search",
-        "stage_row_path",
         "search_ms_per_replicate",
         "peak_rss_MiB",
         "meets_time",
