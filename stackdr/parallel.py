@@ -80,6 +80,12 @@ def dask_backend(cluster: Any = None, jobs: int = 1) -> Iterator[Any]:
     ------
     distributed.Client
         The client joblib's dask backend uses.
+
+    Notes
+    -----
+    Give workers one thread each (``dask worker --nthreads 1``; local clusters started here
+    do): the weight search keeps compiled convex programs per process, and two threads solving
+    with the same program at once fail.
     """
     check_cluster("dask", cluster)
     from distributed import Client, LocalCluster, get_client
