@@ -446,7 +446,9 @@ def bootstrap_histograms(results: dict) -> Figure | None:
         reps = np.array([_num(v) for v in boot["estimates"][row["name"]]])
         reps = reps[np.isfinite(reps)]
         colour = MAIN_COLOUR if row["kind"] == "target-aimed" else STACK_COLOUR
-        ax.hist(reps, bins=30, color=colour, alpha=0.75)
+        # Replicates equal up to round-off (a constant outcome) leave no room for 30 bins.
+        spread = reps.size and np.ptp(reps) > 1e-9 * np.abs(reps).max()
+        ax.hist(reps, bins=30 if spread else 1, color=colour, alpha=0.75)
         ax.axvspan(
             _num(row["low"]),
             _num(row["high"]),
