@@ -657,7 +657,10 @@ def files(tmp_path_factory):
     return root
 
 
-def estimate_args(root: Path, data: str, out: str) -> list:
+def estimate_args(
+    root: Path, data: str, out: str, *, config: str = "quick.toml", target: str = "ate"
+) -> list:
+    """``stackdr estimate`` arguments for files in ``root`` (treatment a, outcome y)."""
     return [
         "estimate",
         root / data,
@@ -666,9 +669,9 @@ def estimate_args(root: Path, data: str, out: str) -> list:
         "--outcome",
         "y",
         "--target",
-        "ate",
+        target,
         "--config",
-        root / "quick.toml",
+        root / config,
         "--out",
         root / out,
     ]

@@ -26,6 +26,7 @@ from stackdr.serialise import read_results_json
 
 from .helpers import confounded_data
 from .test_cli import QUICK
+from .test_faults import estimate_args
 
 # Learners slow enough that a run is still fitting when the signal arrives.
 SLOW = """
@@ -60,24 +61,8 @@ def root(tmp_path_factory) -> Path:
 
 
 def command(root: Path, config: str, out: Path, *extra) -> list:
-    return [
-        sys.executable,
-        "-m",
-        "stackdr.cli",
-        "estimate",
-        str(root / "data.csv"),
-        "--treatment",
-        "a",
-        "--outcome",
-        "y",
-        "--target",
-        "ate",
-        "--config",
-        str(root / config),
-        "--out",
-        str(out),
-        *map(str, extra),
-    ]
+    arguments = estimate_args(root, "data.csv", out, config=config)
+    return [sys.executable, "-m", "stackdr.cli", *map(str, arguments), *map(str, extra)]
 
 
 def processes_with(marker: str) -> list[int]:
