@@ -99,6 +99,16 @@ def _covariate_frame(frame: pd.DataFrame, notes: list[str]) -> tuple[np.ndarray,
         raise InputError(
             f"covariates have missing values: {listed}; impute or drop these rows first"
         )
+    for col in frame.columns:
+        kind = frame[col].dtype
+        # One-hot encoding would turn every distinct time into its own column.
+        if pd.api.types.is_datetime64_any_dtype(kind) or pd.api.types.is_timedelta64_dtype(kind):
+            raise InputError(
+                f"covariate {col!r} holds dates or durations; convert it to a number first "
+                "(for example days since a start date)"
+            )
+        if pd.api.types.is_complex_dtype(kind):
+            raise InputError(f"covariate {col!r} holds complex numbers")
     categorical = [
         col
         for col in frame.columns
@@ -111,6 +121,16 @@ def _covariate_frame(frame: pd.DataFrame, notes: list[str]) -> tuple[np.ndarray,
                 frame[col] = frame[col].astype(float)
             else:
                 encoded_cols.append(col)
+        for col in encoded_cols:
+            levels = frame[col].nunique()
+            if levels > min(100, len(frame) / 2):
+                warnings.warn(
+                    f"covariate {col!r} has {levels} distinct text values in {len(frame)} rows "
+                    f"and becomes {levels - 1} indicator columns; an identifier or free text "
+                    "is not a covariate (leave it out with covariates=...)",
+                    UserWarning,
+                    stacklevel=3,
+                )
         if encoded_cols:
             frame = pd.get_dummies(frame, columns=encoded_cols, drop_first=True, dtype=float)
             note = "one-hot encoded non-numeric covariates: " + ", ".join(map(repr, encoded_cols))
