@@ -300,6 +300,20 @@ FAULTS = [
         lambda: fit(folds=500),
     ),
     Fault(
+        "date covariate",
+        "error (one-hot encoding would make every date a column)",
+        "covariate 'when' holds dates or durations; convert it to a number first",
+        InputError,
+        fit_frame(changed(when=lambda f: pd.date_range("2020-01-01", periods=len(f)))),
+    ),
+    Fault(
+        "identifier column among the covariates",
+        "runs; warning (one indicator column per distinct text value)",
+        "covariate 'id' has 200 distinct text values in 200 rows and becomes 199 indicator",
+        UserWarning,
+        fit_frame(changed(id=lambda f: [f"p{i}" for i in f.index])),
+    ),
+    Fault(
         "perfect separation (a covariate equal to the treatment)",
         "runs; propensities clipped; positivity warning naming learners and share",
         "positivity: propensities outside [0.01, 0.99] were clipped for 1 of 2 propensity "
