@@ -248,20 +248,11 @@ class BlendEstimator:
         prepared = prepare_data(
             data, treatment, outcome, covariates, target=target, folds=int(n_folds)
         )
-        plib, olib = self._libraries(prepared)
         # --- backend/cluster: learner fits run where the backend setting says.
         with parallel_backend(self.backend, self.cluster, self.n_jobs or 1):
-            cf = cross_fit(
+            cf = self.cross_fit(
                 prepared,
                 target,
-                plib,
-                olib,
-                folds=self.folds,
-                repeats=self.repeats,
-                seed=self.seed,
-                clip=self.clip,
-                outcome_mode=self.outcome_mode,
-                on_error=self.on_error,
                 n_jobs=dask_jobs(self.n_jobs) if self.backend == "dask" else self.n_jobs,
                 progress=self.progress,
             )
@@ -270,6 +261,26 @@ class BlendEstimator:
         result.timings["cross_fit"] = fit_seconds
         result.timings["total"] = time.perf_counter() - start
         return result
+
+    def cross_fit(
+        self, prepared: PreparedData, target: Target, *, n_jobs=1, progress: bool = False
+    ) -> CrossFitResult:
+        """Cross-fit both libraries on validated data with this estimator's settings."""
+        plib, olib = self._libraries(prepared)
+        return cross_fit(
+            prepared,
+            target,
+            plib,
+            olib,
+            folds=self.folds,
+            repeats=self.repeats,
+            seed=self.seed,
+            clip=self.clip,
+            outcome_mode=self.outcome_mode,
+            on_error=self.on_error,
+            n_jobs=n_jobs,
+            progress=progress,
+        )
 
     def _libraries(self, prepared: PreparedData) -> tuple[dict, dict]:
         binary = bool(np.isin(prepared.A, (0.0, 1.0)).all())

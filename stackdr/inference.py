@@ -455,25 +455,11 @@ def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk,
 
 
 def _refit_one(estimator, prepared, target, rows):
-    from .crossfit import cross_fit
 
     data = prepared.take(rows)
-    plib, olib = estimator._libraries(data)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        cf = cross_fit(
-            data,
-            target,
-            plib,
-            olib,
-            folds=estimator.folds,
-            repeats=estimator.repeats,
-            seed=estimator.seed,
-            clip=estimator.clip,
-            outcome_mode=estimator.outcome_mode,
-            on_error=estimator.on_error,
-            n_jobs=1,
-        )
+        cf = estimator.cross_fit(data, target, n_jobs=1)
         res = estimator.analyse(data, target, cf, bootstrap=False)
     return (
         {row.name: row.estimate for row in res.estimators},
