@@ -379,6 +379,11 @@ class _Maybe:
     inner: object
 
 
+# Largest magnitude a saved number may have. Outcomes are limited to 1e100 (stackdr.data), so
+# estimates stay near that and squared quantities near 1e200; larger values can only come from a
+# damaged file, and the figures' arithmetic on them would overflow.
+_LARGEST_SAVED = 1e250
+
 _KIND_TEXT = {
     "num": "a number",
     "num?": "a number or null",
@@ -547,6 +552,11 @@ def _check(value, spec, where: str) -> None:
     if isinstance(spec, str):
         if not _scalar_ok(value, spec):
             raise InputError(f"{where} must be {_KIND_TEXT[spec]}, got {_type_name(value)}")
+        if spec in ("num", "num?") and value is not None and abs(value) > _LARGEST_SAVED:
+            raise InputError(
+                f"{where} is {value:.3g}, beyond the largest magnitude a results file holds "
+                f"({_LARGEST_SAVED:g})"
+            )
     elif isinstance(spec, _Maybe):
         if value is not None:
             _check(value, spec.inner, where)
@@ -595,6 +605,8 @@ def _check_shapes(d: dict) -> None:
     _require(bool(d["estimators"]), "estimators must list at least one estimator")
     for i, row in enumerate(d["estimators"]):
         same_learners(row["weights"], f"estimators[{i}].weights")
+    clip = d["diagnostics"]["clip"]
+    _require(0 <= clip < 0.5, f"diagnostics.clip must be in [0, 0.5), got {clip!r}")
     hist = d["diagnostics"]["overlap_histogram"]
     if hist is not None:
         for arm, counts in hist["counts"].items():
