@@ -10,6 +10,7 @@ Whatever the input, exactly one of two things may happen: a valid result (exit 0
 from __future__ import annotations
 
 import contextlib
+import copy
 import csv
 import io
 import json
@@ -361,6 +362,72 @@ def test_random_flags(workspace, pairs, loose):
     (workspace / "data.csv").write_text("\n".join(rows) + "\n")
     out = workspace / "out"
     run_cli(workspace, [*estimate_args("data.csv", "out"), *extra], out, "random flags")
+
+
+# ----------------------------------------------------------------------------- damaged results
+
+
+@pytest.fixture(scope="module")
+def saved_results(tmp_path_factory) -> dict:
+    """A genuine results.json (small run) to damage."""
+    root = tmp_path_factory.mktemp("saved")
+    (root / "quick.toml").write_text(FUZZ_CONFIG)
+    (root / "data.csv").write_text(
+        "a,y,x1\n" + "".join(f"{i % 2},{(i * 7) % 5 + i % 2},{(i * 3) % 7}\n" for i in range(30))
+    )
+    with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
+        assert main([str(a) for a in fault_args(root, "data.csv", "out")]) == 0
+    return json.loads((root / "out" / "results.json").read_text(encoding="utf-8"))
+
+
+def _places(value, path=()) -> list:
+    """Paths to every dict entry and the first items of every list."""
+    found = [path] if path else []
+    if isinstance(value, dict):
+        for key, item in value.items():
+            found += _places(item, (*path, key))
+    elif isinstance(value, list):
+        for index, item in enumerate(value[:2]):
+            found += _places(item, (*path, index))
+    return found
+
+
+DAMAGE = [None, "x", -1, 0, 1e308, [], {}, True, [1, 2], "NaN", 3.5, {"a": 1}]
+
+
+@settings(PIPELINE, max_examples=25 * SCALE)
+@given(
+    edits=st.lists(
+        st.tuples(st.integers(0, 10**6), st.integers(-1, len(DAMAGE) - 1)), min_size=1, max_size=3
+    )
+)
+def test_report_from_damaged_results(workspace, saved_results, edits):
+    results = json.loads(json.dumps(saved_results))
+    for where, what in edits:
+        places = _places(results)
+        *parents, last = places[where % len(places)]
+        holder = results
+        for key in parents:
+            holder = holder[key]
+        if what < 0 and isinstance(holder, dict):
+            del holder[last]
+        else:
+            holder[last] = copy.deepcopy(DAMAGE[what])
+    (workspace / "results.json").write_text(json.dumps(results))
+    out = workspace / "rebuilt"
+    shutil.rmtree(out, ignore_errors=True)
+    before = tree(workspace)
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err), contextlib.redirect_stdout(io.StringIO()):
+        code = main(["report", str(workspace / "results.json"), "--out", str(out)])
+    lines = err.getvalue().splitlines()
+    assert code in (0, 2) and "Traceback" not in err.getvalue(), err.getvalue()
+    if code == 2:
+        assert len(lines) == 1 and ONE_LINE_ERROR.match(lines[0]), err.getvalue()
+        MESSAGES[re.sub(r"'[^']*'|\d+(\.\d+)?", "_", lines[0])[:70]] += 1
+    assert {p for p in tree(workspace) - before if not str(p).startswith("rebuilt")} == set()
+    COUNTS["damaged results tried"] += 1
+    COUNTS[f"damaged results {'ran' if code == 0 else 'clear error'}"] += 1
 
 
 # ----------------------------------------------------------------------------- as processes
