@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
 
-from .errors import InputError
+from .errors import InputError, StackdrError
 from .selection import discrete_pairs, pure_weights, run_search
 from .stacking import (
     logloss_moment_features,
@@ -423,7 +423,7 @@ def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk,
                 {
                     "side": "propensity",
                     "learner": a.columns,
-                    "share_weighted": (a > 0.01).mean().to_numpy(),
+                    "share_weighted": (a.dropna() > 0.01).mean().to_numpy(),
                     "mean_weight": a.mean().to_numpy(),
                 }
             ),
@@ -431,7 +431,7 @@ def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk,
                 {
                     "side": "outcome",
                     "learner": b.columns,
-                    "share_weighted": (b > 0.01).mean().to_numpy(),
+                    "share_weighted": (b.dropna() > 0.01).mean().to_numpy(),
                     "mean_weight": b.mean().to_numpy(),
                 }
             ),
@@ -455,12 +455,17 @@ def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk,
 
 
 def _refit_one(estimator, prepared, target, rows):
-
+    """One refit replicate: (estimates, alpha, beta, tie-break moved), or the reason it could
+    not be fitted. A resample can leave an arm too small for the folds or make every learner of
+    a side fail; that replicate is left out rather than ending the run."""
     data = prepared.take(rows)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        cf = estimator.cross_fit(data, target, n_jobs=1)
-        res = estimator.analyse(data, target, cf, bootstrap=False)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            cf = estimator.cross_fit(data, target, n_jobs=1)
+            res = estimator.analyse(data, target, cf, bootstrap=False)
+    except StackdrError as exc:
+        return f"{type(exc).__name__}: {exc}"
     return (
         {row.name: row.estimate for row in res.estimators},
         res.alpha,
@@ -503,12 +508,27 @@ def refit_bootstrap(
     alphas = np.zeros((B, len(result.alpha)))
     betas = np.zeros((B, len(result.beta)))
     moved = np.zeros(B, dtype=bool)
-    for b, (vals, a, bb, mv) in enumerate(run):
+    failed = []
+    for b, outcome in enumerate(run):
+        if isinstance(outcome, str):
+            failed.append(outcome)
+            alphas[b], betas[b] = np.nan, np.nan
+            continue
+        vals, a, bb, mv = outcome
         for name in names:
             est[name][b] = vals.get(name, np.nan)
         # A learner that failed in a replicate was dropped there: its weight is zero.
         alphas[b] = a.reindex(result.alpha.index, fill_value=0.0).to_numpy()
         betas[b] = bb.reindex(result.beta.index, fill_value=0.0).to_numpy()
         moved[b] = mv
+    if len(failed) == B:
+        raise InputError(f"no refit bootstrap replicate could be fitted; the first: {failed[0]}")
+    if failed:
+        warnings.warn(
+            f"{len(failed)} of {B} refit bootstrap replicates could not be fitted and were left "
+            f"out of the interval (the first: {failed[0]})",
+            RuntimeWarning,
+            stacklevel=2,
+        )
     stage = {"total": time.perf_counter() - t0}
     return summarise_replicates(result, est, alphas, betas, moved, "refit", method, 1, stage)
