@@ -416,6 +416,18 @@ FAULTS = [
         ),
     ),
     Fault(
+        "refit bootstrap resample that cannot be fitted",
+        "runs; that replicate left out; warning counting such replicates",
+        "refit bootstrap replicates could not be fitted and were left out of the interval",
+        RuntimeWarning,
+        # Four treated rows: some resamples leave a fold without two treated rows to train on.
+        lambda: fit(
+            toy_frame(24).assign(a=[1.0] * 4 + [0.0] * 20),
+            bootstrap=30,
+            bootstrap_kind="refit",
+        ),
+    ),
+    Fault(
         "clipping bound outside [0, 0.5)",
         "error",
         "clip must be in [0, 0.5), got 0.7",
@@ -729,6 +741,15 @@ def test_spreadsheet_csv_variants_match_plain(files, plain_run, data):
     assert variant["estimate"] == pytest.approx(plain_run["estimate"], rel=1e-12)
 
 
+def test_damaged_results_file_is_refused_by_report(files, plain_run):
+    damaged = {**plain_run, "estimate": 1e300}
+    (files / "damaged.json").write_text(json.dumps(damaged))
+    code, err = cli(["report", files / "damaged.json", "--out", files / "damaged-report"])
+    assert code == 2 and err.count("\n") == 1
+    assert "estimate is 1e+300, beyond the largest magnitude a results file holds" in err
+    assert not (files / "damaged-report").exists()
+
+
 def test_hostile_column_name_is_inert(files, monkeypatch):
     monkeypatch.chdir(files)
     code, err = cli(estimate_args(files, "hostile.csv", "out-hostile"))
@@ -762,6 +783,7 @@ def test_readme_lists_every_fault():
         + [
             "CSV with a UTF-8 BOM, `;` delimiter or quoted numbers",
             "column name with HTML or shell metacharacters",
+            "damaged results file given to `stackdr report`",
         ]
     )
     missing = [name for name in names if not any(f"| {name} |" in row for row in rows)]
