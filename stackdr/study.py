@@ -169,7 +169,10 @@ def _connect(path: Path, create: bool) -> sqlite3.Connection:
         raise FileNotFoundError(f"no study file at {path}")
     # mode=rw refuses to create a missing file when only reading.
     uri = path.resolve().as_uri() + ("" if create else "?mode=rw")
-    conn = sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_SECONDS)
+    try:
+        conn = sqlite3.connect(uri, uri=True, timeout=BUSY_TIMEOUT_SECONDS)
+    except sqlite3.OperationalError as error:  # e.g. a missing or read-only folder
+        raise InputError(f"cannot open study file {path} ({error})") from None
     try:
         conn.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_SECONDS * 1000)}")
         conn.execute("PRAGMA journal_mode = WAL")
