@@ -13,6 +13,7 @@ import contextlib
 import csv
 import io
 import json
+import os
 import re
 import sys
 import traceback
@@ -202,6 +203,10 @@ def _run_estimate(args: argparse.Namespace) -> int:
     overwrite = bool(values.get("overwrite", False))
     if out_dir.exists() and not out_dir.is_dir():
         raise InputError(f"output folder {str(out_dir)!r} is a file")
+    # Checked before the fits, so a long run does not fail only when it comes to write.
+    nearest = next(p for p in (out_dir.absolute(), *out_dir.absolute().parents) if p.exists())
+    if not nearest.is_dir() or not os.access(nearest, os.W_OK | os.X_OK):
+        raise InputError(f"output folder {str(out_dir)!r} cannot be written ({str(nearest)!r})")
     if (out_dir / "results.json").exists() and not overwrite:
         raise InputError(
             f"{out_dir / 'results.json'} already exists; pass --overwrite to replace it"
