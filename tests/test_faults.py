@@ -741,6 +741,38 @@ def test_spreadsheet_csv_variants_match_plain(files, plain_run, data):
     assert variant["estimate"] == pytest.approx(plain_run["estimate"], rel=1e-12)
 
 
+CLI_ERRORS = {
+    "output folder inside a file": (
+        lambda root: estimate_args(root, "plain.csv", "plain.csv/run"),
+        "output folder",
+        "cannot be written",
+    ),
+    "study file in a missing folder": (
+        lambda root: [
+            "simulate",
+            "--design",
+            "kang-schafer",
+            "--n",
+            100,
+            "--reps",
+            1,
+            "--out",
+            root / "absent" / "study.sqlite",
+        ],
+        "cannot open study file",
+        "unable to open database file",
+    ),
+}
+
+
+@pytest.mark.parametrize("case", list(CLI_ERRORS))
+def test_unusable_output_paths(files, case):
+    build, *fragments = CLI_ERRORS[case]
+    code, err = cli(build(files))
+    assert code == 2 and err.count("\n") == 1 and err.startswith("stackdr: error: "), err
+    assert all(fragment in err for fragment in fragments)
+
+
 def test_damaged_results_file_is_refused_by_report(files, plain_run):
     damaged = {**plain_run, "estimate": 1e300}
     (files / "damaged.json").write_text(json.dumps(damaged))
@@ -784,6 +816,7 @@ def test_readme_lists_every_fault():
             "CSV with a UTF-8 BOM, `;` delimiter or quoted numbers",
             "column name with HTML or shell metacharacters",
             "damaged results file given to `stackdr report`",
+            *CLI_ERRORS,
         ]
     )
     missing = [name for name in names if not any(f"| {name} |" in row for row in rows)]
