@@ -423,7 +423,7 @@ FAULTS = [
         # Four treated rows: some resamples leave a fold without two treated rows to train on.
         lambda: fit(
             toy_frame(24).assign(a=[1.0] * 4 + [0.0] * 20),
-            bootstrap=30,
+            bootstrap=8,
             bootstrap_kind="refit",
         ),
     ),

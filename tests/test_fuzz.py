@@ -41,7 +41,7 @@ from .test_faults import estimate_args as fault_args
 # times as many examples of each, for a longer hunt outside the suite.
 SCALE = int(os.environ.get("STACKDR_FUZZ_SCALE", "1"))
 PIPELINE = settings(
-    max_examples=12 * SCALE,
+    max_examples=10 * SCALE,
     deadline=None,
     derandomize=True,
     database=None,
@@ -345,7 +345,7 @@ FLAG_VALUES = ["2", "0.5", "logit", "minimax", "bayesian", "x1", "a", "y", "ate"
 FLAG_VALUES += ["-1", "0", "1", "nan", "inf", "1e9", "", "--", "\u00e9", "<b>"]
 
 
-@settings(PIPELINE, max_examples=10 * SCALE)
+@settings(PIPELINE, max_examples=8 * SCALE)
 @given(
     pairs=st.lists(
         st.tuples(st.sampled_from(VALUE_FLAGS), st.sampled_from(FLAG_VALUES)), max_size=3
@@ -395,7 +395,7 @@ def _places(value, path=()) -> list:
 DAMAGE = [None, "x", -1, 0, 1e308, [], {}, True, [1, 2], "NaN", 3.5, {"a": 1}]
 
 
-@settings(PIPELINE, max_examples=25 * SCALE)
+@settings(PIPELINE, max_examples=16 * SCALE)
 @given(
     edits=st.lists(
         st.tuples(st.integers(0, 10**6), st.integers(-1, len(DAMAGE) - 1)), min_size=1, max_size=3

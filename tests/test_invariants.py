@@ -204,7 +204,7 @@ def test_weights_on_the_simplex_and_risks_non_negative(
         blend=blend,
         criterion=criterion,
         tie_break=tie_break,
-        bootstrap=20,
+        bootstrap=10,
     )
     for row in result.estimators:
         for weights in (row.alpha, row.beta):
