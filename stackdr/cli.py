@@ -23,6 +23,7 @@ from pathlib import Path
 import pandas as pd
 
 from . import __version__
+from .cli_study import add_cluster_options, cluster_from_args
 from .cli_study import register as register_study
 from .config import SETTINGS, estimator_kwargs, load_config, resolve_settings
 from .errors import InputError, StackdrError
@@ -219,6 +220,9 @@ def _run_estimate(args: argparse.Namespace) -> int:
         binary = target.binary_treatment or bool(coded.isin([0, 1]).all())
         config.check_kinds("classifier" if binary else "regressor")
     kwargs = {"progress": True, **estimator_kwargs(values)}
+    backend, cluster = cluster_from_args(args)
+    if backend is not None:
+        kwargs.update(backend=backend, cluster=cluster)
     estimator = BlendEstimator(
         target,
         config.library("propensity") if config else None,
@@ -443,6 +447,7 @@ def register(subparsers) -> None:
         help="replace an existing results.json in the output folder",
     )
     est.add_argument("--out", metavar="DIR", help="output folder (created if missing)")
+    add_cluster_options(est, "learner fits and the refit bootstrap")
     est.set_defaults(run=_run_estimate)
 
     rep = subparsers.add_parser(

@@ -20,6 +20,31 @@ from .errors import InputError
 _NOT_FOR_STUDIES = ("data", "treatment", "outcome", "covariates", "target", "out", "overwrite")
 
 
+def add_cluster_options(parser: argparse.ArgumentParser, what: str) -> None:
+    """--scheduler / --local-cluster: run ``what`` on a dask.distributed cluster."""
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument(
+        "--scheduler", metavar="ADDRESS", help=f"run {what} on this dask.distributed scheduler"
+    )
+    where.add_argument(
+        "--local-cluster",
+        type=int,
+        metavar="N",
+        help=f"run {what} on a local dask.distributed cluster of N workers",
+    )
+
+
+def cluster_from_args(args: argparse.Namespace) -> tuple[str | None, str | int | None]:
+    """(backend, cluster) for BlendEstimator / run_study from the cluster options."""
+    if args.scheduler is not None:
+        return "dask", args.scheduler
+    if args.local_cluster is not None:
+        if args.local_cluster < 1:
+            raise InputError(f"--local-cluster needs at least 1 worker, got {args.local_cluster}")
+        return "dask", args.local_cluster
+    return None, None
+
+
 def register(subparsers) -> None:
     """Add the ``simulate`` and ``study`` commands to the ``stackdr`` parser."""
     from .cli import common_options
@@ -77,16 +102,7 @@ def register(subparsers) -> None:
     sim.add_argument(
         "--resume", action="store_true", help="continue the study in an existing study file"
     )
-    where = sim.add_mutually_exclusive_group()
-    where.add_argument(
-        "--scheduler", metavar="ADDRESS", help="run replicates on this dask.distributed scheduler"
-    )
-    where.add_argument(
-        "--local-cluster",
-        type=int,
-        metavar="N",
-        help="run replicates on a local dask.distributed cluster of N workers",
-    )
+    add_cluster_options(sim, "replicates")
     sim.add_argument("--no-progress", action="store_true", help="hide the progress bar")
     sim.set_defaults(run=run_simulate)
 
@@ -178,13 +194,7 @@ def run_simulate(args: argparse.Namespace) -> int:
     from .study import StudyExistsError, run_study
 
     library, settings, seed = _study_options(args)
-    backend, cluster = None, None
-    if args.scheduler is not None:
-        backend, cluster = "dask", args.scheduler
-    elif args.local_cluster is not None:
-        if args.local_cluster < 1:
-            raise InputError(f"--local-cluster needs at least 1 worker, got {args.local_cluster}")
-        backend, cluster = "dask", args.local_cluster
+    backend, cluster = cluster_from_args(args)
     try:
         run = run_study(
             args.out,

@@ -81,3 +81,39 @@ def test_backend_settings_are_checked():
     with parallel_backend(None):
         pass
     assert dask_jobs(None) == -1 and dask_jobs(1) == -1 and dask_jobs(4) == 4
+
+
+def test_estimate_command_on_a_local_cluster(tmp_path):
+    # `stackdr estimate --local-cluster 2` runs the learner fits on dask and writes the same
+    # estimate as the local run.
+    import json
+
+    from stackdr.cli import main
+    from stackdr.demo import simulate_demo
+
+    frame, _ = simulate_demo(300, seed=5)
+    data = tmp_path / "d.csv"
+    frame.to_csv(data, index=False)
+    config = tmp_path / "c.toml"
+    config.write_text("[propensity.logistic]\n[outcome.linear]\n")
+    common = [
+        "estimate",
+        str(data),
+        "--treatment",
+        "programme",
+        "--outcome",
+        "sbp_change",
+        "--target",
+        "ate",
+        "--config",
+        str(config),
+        "--bootstrap",
+        "0",
+        "--no-progress",
+    ]
+    assert main([*common, "--out", str(tmp_path / "local")]) == 0
+    assert main([*common, "--local-cluster", "2", "--out", str(tmp_path / "dask")]) == 0
+    local = json.loads((tmp_path / "local" / "results.json").read_text())
+    remote = json.loads((tmp_path / "dask" / "results.json").read_text())
+    assert remote["estimate"] == local["estimate"]
+    assert main([*common, "--local-cluster", "0", "--out", str(tmp_path / "bad")]) == 2
