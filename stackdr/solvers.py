@@ -271,8 +271,9 @@ def minimise_range_lp(V: ArrayLike, mask: ArrayLike | None = None) -> SolveResul
     Notes
     -----
     Values are centred and scaled before solving (the range is translation-invariant and
-    positively homogeneous) and the constraint template is cached per shape; one solve takes
-    about 1 ms for K <= 10 (see ``benchmarks/bench_solvers.py``).
+    positively homogeneous) and the constraint template is cached per shape; one solve took
+    about 2 ms (median) for K <= 20 in ``benchmarks/bench_solvers.py``, most of it scipy's
+    wrapper overhead (HiGHS called through highspy directly took about 0.5 ms).
 
     Examples
     --------
