@@ -291,20 +291,25 @@ def minimise_range_lp(V: ArrayLike, mask: ArrayLike | None = None) -> SolveResul
     A_ub = A_template.copy()
     A_ub[:J, :K] = Vs.T
     A_ub[J:, :K] = -Vs.T
-    res = linprog(
-        cost,
-        A_ub=A_ub,
-        b_ub=b_ub,
-        A_eq=A_eq,
-        b_eq=np.ones(1),
-        bounds=bounds,
-        method="highs",
-        # HiGHS' default 1e-7 tolerances let it stop up to ~1e-7 (of the scaled values) above
-        # the optimum, and without presolve its bound perturbations can leave weights of 1e-7
-        # that cost ~1e-6 in range (both seen on sparse tables); tight tolerances with presolve
-        # matched cvxpy to 1e-9 on such tables for about 0.3 ms more per solve.
-        options={"primal_feasibility_tolerance": 1e-10, "dual_feasibility_tolerance": 1e-10},
-    )
+    try:
+        res = linprog(
+            cost,
+            A_ub=A_ub,
+            b_ub=b_ub,
+            A_eq=A_eq,
+            b_eq=np.ones(1),
+            bounds=bounds,
+            method="highs",
+            # HiGHS' default 1e-7 tolerances let it stop up to ~1e-7 (of the scaled values)
+            # above the optimum, and without presolve its bound perturbations can leave weights
+            # of 1e-7 that cost ~1e-6 in range (both seen on sparse tables); tight tolerances
+            # with presolve matched cvxpy to 1e-9 on such tables for about 0.3 ms more per solve.
+            options={"primal_feasibility_tolerance": 1e-10, "dual_feasibility_tolerance": 1e-10},
+        )
+    except Exception as exc:  # noqa: BLE001 - a crashing LP must not end the run silently
+        return _vertex_fallback(
+            Vm, "range_lp", f"{type(exc).__name__}: {exc}", started, {"n_columns": J}
+        )
     details = {"solver_status": int(res.status), "message": str(res.message), "n_columns": J}
     if res.status != 0 or res.x is None or not np.all(np.isfinite(res.x)):
         return _vertex_fallback(

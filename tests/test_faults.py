@@ -566,15 +566,7 @@ def _lp_crash(*args, **kwargs):
     "replacement, message",
     [
         (_lp_failure, "range_lp failed (HiGHS status 2: infeasible (simulated))"),
-        pytest.param(
-            _lp_crash,
-            "range_lp failed",
-            marks=pytest.mark.xfail(
-                raises=ValueError,
-                strict=True,
-                reason="stackdr/solvers.py lets an exception from linprog escape (reported)",
-            ),
-        ),
+        (_lp_crash, "range_lp failed (ValueError: simulated HiGHS crash)"),
     ],
     ids=["LP solver reports failure", "LP solver raises"],
 )
