@@ -14,7 +14,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
-from scipy.optimize import OptimizeResult, minimize
+from scipy.optimize import minimize
 
 import stackdr.solvers as solvers
 from stackdr.errors import InputError
@@ -103,10 +103,10 @@ def test_lp_masks_and_degenerate_shapes(rng):
 def test_lp_failure_falls_back_to_best_vertex(monkeypatch, rng):
     V = rng.normal(size=(3, 4))
 
-    def failing_linprog(*args, **kwargs):
-        return OptimizeResult(status=4, x=None, message="numerical difficulties")
+    def failing_lp(*args, **kwargs):
+        return False, None, "numerical difficulties", 0
 
-    monkeypatch.setattr(solvers, "linprog", failing_linprog)
+    monkeypatch.setattr(solvers, "_highs_range_lp", failing_lp)
     with pytest.warns(RuntimeWarning, match="numerical difficulties"):
         res = minimise_range_lp(V)
     best = int(np.argmin(np.ptp(V, axis=1)))
