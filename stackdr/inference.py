@@ -30,6 +30,7 @@ import pandas as pd
 from joblib import Parallel, delayed
 
 from .errors import InputError, StackdrError
+from .pairtable import pair_rows
 from .selection import discrete_pairs, pure_weights, run_search
 from .stacking import (
     logloss_moment_features,
@@ -145,11 +146,7 @@ def replicate_features(inp, cf, prepared, repeat: int, stack_alpha: np.ndarray) 
     sl = layout.slices()
     F = np.zeros((n, sl["width"]))
     for k in range(K1):
-        H = np.repeat(inp.h4[:, None], K2, axis=1)
-        for P, B, h1, h2, h3 in zip(inp.P, inp.B, inp.h1, inp.h2, inp.h3):
-            p = P[:, k][:, None]
-            H += B * (p * h1[:, None] + h2[:, None]) + p * h3[:, None]
-        F[:, sl["pairs"].start + k * K2 : sl["pairs"].start + (k + 1) * K2] = H
+        F[:, sl["pairs"].start + k * K2 : sl["pairs"].start + (k + 1) * K2] = pair_rows(inp, k)
     F[:, sl["d"]] = inp.d[:, None]
     rows = cf.observed_mask
     obs = np.where(rows[:, None], np.nan_to_num(cf.observed[repeat]), 0.0)

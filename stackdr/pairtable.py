@@ -162,6 +162,15 @@ def blend_estimate(inp: PairInputs, alpha, beta, blend: str = "riesz") -> RowEst
     return estimate_from_rows(row_contributions(inp, alpha, beta, blend), inp.d)
 
 
+def pair_rows(inp: PairInputs, k: int) -> np.ndarray:
+    """Row contributions H_i of every pair (k, j) for one propensity learner k: (n, K2)."""
+    H = np.repeat(inp.h4[:, None], inp.shape[1], axis=1)
+    for P, B, h1, h2, h3 in zip(inp.P, inp.B, inp.h1, inp.h2, inp.h3):
+        p = P[:, k][:, None]
+        H += B * (p * h1[:, None] + h2[:, None]) + p * h3[:, None]
+    return H
+
+
 def pair_standard_errors(inp: PairInputs) -> np.ndarray:
     """Influence-function SE of every pair (K1 x K2); one pass per propensity learner, so memory
     stays at n x K2."""
@@ -170,10 +179,7 @@ def pair_standard_errors(inp: PairInputs) -> np.ndarray:
     dbar = inp.d.mean()
     se = np.empty((K1, K2))
     for k in range(K1):
-        H = np.repeat(inp.h4[:, None], K2, axis=1)
-        for P, B, h1, h2, h3 in zip(inp.P, inp.B, inp.h1, inp.h2, inp.h3):
-            p = P[:, k][:, None]
-            H += B * (p * h1[:, None] + h2[:, None]) + p * h3[:, None]
+        H = pair_rows(inp, k)
         psi = H.sum(axis=0) / inp.d.sum()
         infl = (H - inp.d[:, None] * psi[None, :]) / dbar
         se[k] = np.sqrt(np.mean(infl**2, axis=0) / n)
