@@ -27,13 +27,23 @@ from stackdr.targets import get_target  # noqa: E402
 def libraries():
     prop = {
         name: make_learner(name)
-        for name in ("logistic", "spline-logistic", "quadratic-logistic", "boosting-classifier",
-                     "constant-classifier")
+        for name in (
+            "logistic",
+            "spline-logistic",
+            "quadratic-logistic",
+            "boosting-classifier",
+            "constant-classifier",
+        )
     }
     outc = {
         name: make_learner(name)
-        for name in ("linear", "spline-ridge", "quadratic-ridge", "boosting-regressor",
-                     "constant-regressor")
+        for name in (
+            "linear",
+            "spline-ridge",
+            "quadratic-ridge",
+            "boosting-regressor",
+            "constant-regressor",
+        )
     }
     return prop, outc
 
@@ -48,9 +58,19 @@ def synthetic_crossfit(n, rng):
     pi = rng.uniform(0.05, 0.95, size=(1, n, K))
     outcome = {h: rng.normal(size=(1, n, K)) for h in ("mu1", "mu0")}
     return CrossFitResult(
-        np.zeros((1, n), dtype=np.int64), pi, pi, outcome, outcome["mu1"], np.ones(n, bool),
-        [f"p{k}" for k in range(K)], [f"o{k}" for k in range(K)], 0.01,
-        np.zeros((1, K, 2), dtype=np.int64), False, "classifier", "separate",
+        np.zeros((1, n), dtype=np.int64),
+        pi,
+        pi,
+        outcome,
+        outcome["mu1"],
+        np.ones(n, bool),
+        [f"p{k}" for k in range(K)],
+        [f"o{k}" for k in range(K)],
+        0.01,
+        np.zeros((1, K, 2), dtype=np.int64),
+        False,
+        "classifier",
+        "separate",
     )
 
 
@@ -66,8 +86,9 @@ def main() -> None:
         rng = np.random.default_rng(n)
         if n <= 100_000:
             sim = design.simulate(n, rng)
-            data = prepare_data(sim.frame, sim.treatment, sim.outcome, sim.covariates,
-                                target=target)
+            data = prepare_data(
+                sim.frame, sim.treatment, sim.outcome, sim.covariates, target=target
+            )
             prop, outc = libraries()
             cf, fit_s, _ = measure(cross_fit, data, target, prop, outc, n_jobs=2)
             A, Y = data.A, data.Y
@@ -77,14 +98,16 @@ def main() -> None:
             Y = rng.normal(size=n)
         pair_step(target, cf, A, Y)  # warm-up
         _, pair_s, peak = measure(pair_step, target, cf, A, Y)
-        rows.append({
-            "n": n,
-            "fit_seconds": fit_s,
-            "pair_table_seconds": pair_s,
-            "pair_share_of_fit": pair_s / fit_s if np.isfinite(fit_s) else float("nan"),
-            "pair_peak_MiB": peak,
-            "pair_us_per_row": 1e6 * pair_s / n,
-        })
+        rows.append(
+            {
+                "n": n,
+                "fit_seconds": fit_s,
+                "pair_table_seconds": pair_s,
+                "pair_share_of_fit": pair_s / fit_s if np.isfinite(fit_s) else float("nan"),
+                "pair_peak_MiB": peak,
+                "pair_us_per_row": 1e6 * pair_s / n,
+            }
+        )
     print_table(rows, "Pair table (Psi + all pair SEs) vs learner fitting, K1 = K2 = 5, 2 workers")
     write_json("pairtable", {"rows": rows, "note": "1e6 row uses precomputed predictions"})
 

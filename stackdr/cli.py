@@ -540,8 +540,22 @@ def _short_warnings():
         yield
 
 
+# joblib's process pool starts a separate resource-tracker process that shares our stderr.
+# When a run is interrupted, the pool removes its shared-memory folder itself and the tracker,
+# exiting after us, may warn that the folder it meant to remove is already gone. That warning
+# would land after the tool's one closing line; the filter is inherited by the child processes.
+_CHILD_WARNING_FILTER = "ignore:resource_tracker:UserWarning"
+
+
+def _quiet_child_processes() -> None:
+    current = os.environ.get("PYTHONWARNINGS", "")
+    if _CHILD_WARNING_FILTER not in current.split(","):
+        os.environ["PYTHONWARNINGS"] = ",".join(filter(None, [current, _CHILD_WARNING_FILTER]))
+
+
 def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code (0 ok, 1 internal error, 2 user mistake)."""
+    _quiet_child_processes()
     parser = build_parser()
     try:
         args = parser.parse_args(argv)

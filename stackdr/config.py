@@ -26,12 +26,12 @@ override the built-in defaults (:func:`resolve_settings`).
 from __future__ import annotations
 
 import difflib
+import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-import tomllib
 from sklearn.base import BaseEstimator
 
 from .errors import InputError

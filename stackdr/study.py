@@ -34,7 +34,7 @@ import time
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import closing, nullcontext
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
@@ -263,7 +263,7 @@ def _open_study(path: Path, identity: dict[str, Any], resume: bool) -> sqlite3.C
 
 
 def _now() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
+    return datetime.now(UTC).isoformat(timespec="seconds")
 
 
 def _write_replicate(conn: sqlite3.Connection, outcome: dict[str, Any]) -> None:

@@ -152,3 +152,18 @@ def test_missing_output_folder_is_created_and_results_are_kept(root, capsys):
 
     assert main([*args, "--seed", "3", "--overwrite"]) == 0
     assert read_results_json(out / "results.json")["settings"]["seed"] == 3
+
+
+def test_child_process_warnings_are_filtered(monkeypatch, capsys):
+    # The pool's resource tracker may warn after an interrupt that a folder is already gone;
+    # the filter the run exports to its child processes keeps the closing line last.
+    monkeypatch.setenv("PYTHONWARNINGS", "default")
+    assert main(["learners"]) == 0
+    assert os.environ["PYTHONWARNINGS"] == "default,ignore:resource_tracker:UserWarning"
+    probe = subprocess.run(
+        [sys.executable, "-c", "import warnings; warnings.warn('resource_tracker: gone')"],
+        capture_output=True,
+        text=True,
+        env=dict(os.environ),
+    )
+    assert probe.stderr == ""
