@@ -1,14 +1,19 @@
 """Tests for the weight solvers (DESIGN.md section 5).
 
 Outside references: the HiGHS LP is checked against the same program written in cvxpy (solved
-by Clarabel), the tie-break QP against scipy's SLSQP on the same convex QP, and the discrete
+by Clarabel), the tie-break QP against scipy's SLSQP on the same convex QP and against the QP
+written in cvxpy (the readable reference for the package's direct Clarabel call), and the discrete
 selectors against brute-force enumeration of all (k, j) pairs of the mixed-minimax and minimax
 pair criteria of Cui & Tchetgen Tchetgen (arXiv:1911.02029), as stated in DESIGN.md section 4.
 """
 
 import math
 import warnings
+from concurrent.futures import ThreadPoolExecutor
+from types import SimpleNamespace
 
+import clarabel
+import cvxpy as cp
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -281,6 +286,121 @@ def test_tie_break_general_agrees_with_the_qp(rng):
             )
             if pieces is not None:
                 np.testing.assert_allclose(general.weights, qp.weights, atol=1e-6)
+
+
+def cvxpy_projection(V, anchor, bound):
+    """Reference: the tie-break QP written in cvxpy on the standardised values (as the package
+    poses it), solved by cvxpy's Clarabel interface with the package's tight settings."""
+    spread = np.ptp(V) if np.ptp(V) > 0 else 1.0
+    Vs = (V - 0.5 * (V.min() + V.max())) / spread
+    a = cp.Variable(V.shape[0], nonneg=True)
+    upper, lower = cp.Variable(), cp.Variable()
+    values = a @ Vs
+    problem = cp.Problem(
+        cp.Minimize(cp.sum_squares(a - anchor)),
+        [cp.sum(a) == 1, values <= upper, values >= lower, upper - lower <= bound / spread],
+    )
+    problem.solve(solver=cp.CLARABEL, **solvers._CLARABEL_TIGHT)
+    assert problem.status == cp.OPTIMAL, problem.status
+    return a.value
+
+
+def degenerate_table(rng, kind):
+    """Random tables (estimates near 210, as in a pair table) with the named degeneracy."""
+    K, J = {"plain": (6, 5), "wide": (3, 9), "two_learners": (2, 4)}.get(kind, (5, 5))
+    V = 210.0 + rng.normal(0, 2, size=(K, 1)) + rng.normal(0, 1, size=(K, J))
+    if kind == "duplicated_columns":
+        V[:, 3:] = V[:, :2]
+    elif kind == "duplicated_learners":
+        V[1] = V[0]
+    elif kind == "dominating_learner":
+        V[2] = V[2].mean()  # flat row: range 0, the unique minimiser is that vertex
+    return V
+
+
+@pytest.mark.parametrize(
+    "kind",
+    [
+        "plain",
+        "wide",
+        "two_learners",
+        "duplicated_columns",
+        "duplicated_learners",
+        "dominating_learner",
+    ],
+)
+def test_direct_clarabel_matches_the_cvxpy_formulation(rng, kind):
+    # 6 kinds x 10 tables, each at a random share of the anchor's gap and at tolerance 0.
+    for _ in range(10):
+        V = degenerate_table(rng, kind)
+        anchor = rng.dirichlet(np.ones(V.shape[0]))
+        pure = minimise_range_lp(V)
+        gap = np.ptp(anchor @ V) - pure.objective
+        for tolerance in (rng.uniform(0.05, 0.9) * gap, 0.0):
+            with warnings.catch_warnings():
+                warnings.simplefilter("error")  # a fallback would warn
+                tie = tie_break_range(V, pure, tolerance, anchor)
+            assert tie.method == "tie_break_qp" and tie.status == "optimal"
+            reference = cvxpy_projection(V, anchor, pure.objective + tolerance)
+            np.testing.assert_allclose(tie.weights, reference, rtol=0, atol=1e-6)
+
+
+def test_tie_break_is_thread_safe(rng):
+    # One shape for all tables: a solver state shared per shape would be raced on.
+    cases = []
+    for _ in range(40):
+        V = rng.normal(size=(6, 6))
+        pure = minimise_range_lp(V)
+        anchor = rng.dirichlet(np.ones(6))
+        cases.append((V, pure, 0.5 * (np.ptp(anchor @ V) - pure.objective), anchor))
+    serial = [tie_break_range(*case).weights for case in cases]
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        concurrent = list(pool.map(lambda case: tie_break_range(*case).weights, cases))
+    for one, other in zip(serial, concurrent):
+        np.testing.assert_allclose(other, one, rtol=0, atol=1e-12)
+
+
+def reporting_solver(statuses):
+    """A stand-in for clarabel.DefaultSolver that solves for real but reports the given
+    statuses in turn (an exception instance is raised instead)."""
+    real, reports = clarabel.DefaultSolver, iter(statuses)
+
+    def make(*args):
+        report = next(reports)
+        if isinstance(report, Exception):
+            raise report
+        solution = real(*args).solve()
+        return SimpleNamespace(solve=lambda: SimpleNamespace(x=solution.x, status=report))
+
+    return make
+
+
+@pytest.mark.parametrize(
+    "statuses, expected",
+    [
+        (["Solved"], "optimal"),
+        (["AlmostSolved"], "inaccurate"),
+        (["NumericalError", "Solved"], "optimal"),  # defaults rescue the tight settings
+        ([RuntimeError("boom"), "AlmostSolved"], "inaccurate"),
+        (["MaxIterations", "NumericalError"], "fallback"),
+        (["InsufficientProgress", RuntimeError("boom")], "fallback"),
+    ],
+)
+def test_tie_break_maps_clarabel_statuses(monkeypatch, rng, statuses, expected):
+    V, anchor, pure, tolerance = tie_break_problem(rng, 5, 4, 0.4)
+    exact = tie_break_range(V, pure, tolerance, anchor)
+    monkeypatch.setattr(solvers.clarabel, "DefaultSolver", reporting_solver(statuses))
+    if expected == "fallback":
+        last = statuses[-1]
+        with pytest.warns(RuntimeWarning, match=f"tie-break failed.*{last}"):
+            tie = tie_break_range(V, pure, tolerance, anchor)
+        # The fallback steps from the pure minimiser towards the anchor: feasible, no farther.
+        assert np.ptp(tie.weights @ V) <= pure.objective + tolerance + 1e-9 * np.ptp(V)
+        assert tie.details["distance_to_anchor"] <= np.linalg.norm(pure.weights - anchor) + 1e-12
+    else:
+        tie = tie_break_range(V, pure, tolerance, anchor)
+        np.testing.assert_allclose(tie.weights, exact.weights, rtol=0, atol=1e-9)
+    assert tie.status == expected and tie.method == "tie_break_qp"
 
 
 # --- the weight search ------------------------------------------------------------------------
