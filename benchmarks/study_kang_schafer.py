@@ -30,6 +30,7 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")
 
 import pandas as pd  # noqa: E402
+from scipy.stats import norm  # noqa: E402
 
 from stackdr.simulation import make_replicate  # noqa: E402
 from stackdr.study import paired_differences, read_results, run_study, summarise_study  # noqa: E402
@@ -52,6 +53,9 @@ SETTINGS = {
     "default": ("default", {}),
     "parametric-c0": ("parametric", {"tie_break_scale": 0.0}),
     "parametric-c1": ("parametric", {"tie_break_scale": 1.0}),
+    # Perturbation directions only from learners whose out-of-fold loss is within 25% of the best.
+    "default-credible": ("default", {"directions": "credible"}),
+    "parametric-credible": ("parametric", {"directions": "credible"}),
 }
 
 
@@ -110,8 +114,111 @@ def tie_break_table(summary: pd.DataFrame, moved: list[pd.DataFrame]) -> pd.Data
     )
 
 
+def coverage_table(summary: pd.DataFrame, boot_se: pd.DataFrame) -> pd.DataFrame:
+    """Is the coverage shortfall bias or a too-narrow interval?
+
+    ``boot SE / SD`` near 1 says the bootstrap measures the spread of the estimator correctly;
+    ``coverage if only bias`` is what an interval of exactly the right width (estimate +- 1.96
+    SD, normal errors) would cover given the Monte Carlo bias: Phi(1.96 - b/SD) - Phi(-1.96 -
+    b/SD). When the observed coverage is close to it, the shortfall is the bias of the estimator
+    (no interval centred on it can fix that), not a failure of the interval.
+    """
+    keep = summary["setting"].isin(["default", "parametric"]) & summary["estimator"].isin(
+        [MAIN, PLS]
+    )
+    rows = summary[keep].merge(boot_se, on=["setting", "design", "n", "estimator"], how="left")
+    ratio = rows["bias"] / rows["sd"]
+    only_bias = pd.Series(norm.cdf(1.96 - ratio) - norm.cdf(-1.96 - ratio), index=rows.index)
+    return pd.DataFrame(
+        {
+            "setting": rows["setting"],
+            "design": rows["design"],
+            "n": rows["n"],
+            "estimator": rows["estimator"],
+            "reps": rows["reps"],
+            "bias / SD": ratio.map(lambda v: f"{v:.2f}"),
+            "boot SE / SD": (rows["boot_se"] / rows["sd"]).map(lambda v: f"{v:.2f}"),
+            "coverage": [
+                with_mcse(v, e, 3) for v, e in zip(rows["coverage"], rows["coverage_mcse"])
+            ],
+            "coverage if only bias": only_bias.map(lambda v: f"{v:.3f}"),
+        }
+    )
+
+
+def goals_lines(pairs: pd.DataFrame, summary: pd.DataFrame) -> list[str]:
+    """The brief's three goals, judged from the stored results (not from remembered numbers)."""
+    lines = ["## Goals for the tool's default settings", ""]
+    main_pairs = pairs[pairs["estimator_a"] == MAIN]
+    for setting, wanted in (("default", "no worse"), ("parametric", "at least 25% lower")):
+        rows = main_pairs[main_pairs["setting"] == setting]
+        if rows.empty:
+            continue
+        if setting == "default":
+            # no worse within Monte Carlo error: paired sq.-error difference below 2 MC SE
+            ok = rows["sq_error_diff"] <= 2 * rows["sq_error_diff_mcse"]
+        else:
+            ok = rows["rmse_reduction"] >= 0.25
+        cells = ", ".join(
+            f"{d.replace('kang-schafer-', '')} n={n}: {100 * r:+.1f}%"
+            for d, n, r in zip(rows["design"], rows["n"], rows["rmse_reduction"])
+        )
+        verdict = "met" if ok.all() else f"NOT met in {int((~ok).sum())} of {len(ok)} cells"
+        lines.append(
+            f"- RMSE {wanted} than prediction-loss stacking, {setting} libraries: {verdict} "
+            f"(RMSE reduction {cells})."
+        )
+    cov = summary[
+        summary["setting"].isin(["default", "parametric"]) & (summary["estimator"] == MAIN)
+    ]
+    if not cov.empty:
+        inside = cov["coverage"].between(0.93, 0.97)
+        cells = ", ".join(
+            f"{s}/{d.replace('kang-schafer-', '')} n={n}: {c:.3f}"
+            for s, d, n, c in zip(cov["setting"], cov["design"], cov["n"], cov["coverage"])
+        )
+        verdict = (
+            "met" if inside.all() else f"NOT met in {int((~inside).sum())} of {len(inside)} cells"
+        )
+        lines.append(f"- Bootstrap coverage within 0.93-0.97: {verdict} ({cells}).")
+    lines.append("")
+    return lines
+
+
+def across_settings(setting_a: str, setting_b: str) -> pd.DataFrame:
+    """Target-aimed stacking under two settings on the same simulated data sets.
+
+    Replicate seeds come from (study seed, design, n, replicate), so settings that share the
+    study seed see identical data: the per-replicate squared-error differences are paired.
+    """
+    frames = {}
+    for label, setting in (("a", setting_a), ("b", setting_b)):
+        path = study_path(setting)
+        if not path.exists():
+            return pd.DataFrame()
+        rows = read_results(path).query("estimator == @MAIN")
+        frames[label] = rows.assign(**{label: rows["estimate"] - rows["truth"]})[
+            ["design", "n", "rep", label]
+        ]
+    both = frames["a"].merge(frames["b"], on=["design", "n", "rep"]).dropna()
+    out = []
+    for (design, n), group in both.groupby(["design", "n"]):
+        diff = group["a"] ** 2 - group["b"] ** 2
+        out.append(
+            {
+                "design": design,
+                "n": n,
+                "pairs": len(group),
+                f"RMSE {setting_a}": f"{(group['a'] ** 2).mean() ** 0.5:.3f}",
+                f"RMSE {setting_b}": f"{(group['b'] ** 2).mean() ** 0.5:.3f}",
+                "sq. error diff (MC SE)": with_mcse(diff.mean(), diff.std() / len(diff) ** 0.5),
+            }
+        )
+    return pd.DataFrame(out)
+
+
 def report() -> None:
-    summaries, paired, moved = [], [], []
+    summaries, paired, moved, boot = [], [], [], []
     for setting in SETTINGS:
         path = study_path(setting)
         if not path.exists():
@@ -121,7 +228,15 @@ def report() -> None:
             continue
         summary.insert(0, "setting", setting)
         summaries.append(summary)
-        main_rows = read_results(path).query("estimator == @MAIN")
+        results = read_results(path)
+        boot.append(
+            results.groupby(["design", "n", "estimator"])["bootstrap_se"]
+            .mean()
+            .rename("boot_se")
+            .reset_index()
+            .assign(setting=setting)
+        )
+        main_rows = results.query("estimator == @MAIN")
         shares = main_rows.groupby(["design", "n"])["tie_break_moved"].mean()
         moved.append(shares.rename("moved").reset_index().assign(setting=setting))
         paired.append(paired_table(path, setting))
@@ -138,9 +253,13 @@ def report() -> None:
         "",
         f"Written {time.strftime('%Y-%m-%d %H:%M')} by benchmarks/study_kang_schafer.py. "
         f"Reweighting bootstrap B = {BOOTSTRAP}, 95% percentile intervals; Monte Carlo SEs in "
-        "parentheses. Settings: `default` and `parametric` libraries with tie-break c = 0.5 "
-        "(default); `parametric-c0`, `parametric-c1` the parametric libraries with c = 0 and 1.",
+        "parentheses. Settings: `default` and `parametric` libraries with the tool's defaults "
+        "(tie-break c = 0.5, perturbation directions from all learners); `parametric-c0`, "
+        "`parametric-c1` the parametric libraries with c = 0 and 1; `default-credible`, "
+        "`parametric-credible` with directions only from learners whose out-of-fold loss is "
+        "within 25% of the best on their side.",
         "",
+        *goals_lines(pairs, summary),
         "## Paired differences (estimator minus prediction-loss stacking)",
         "",
         "Negative squared-error differences favour the first estimator; `RMSE reduction` is "
@@ -180,6 +299,28 @@ def report() -> None:
             "",
         ]
         print(text_table(c_table))
+    lines += [
+        "## Perturbation directions: credible learners only versus all learners",
+        "",
+        'Target-aimed stacking with `directions="credible"` minus the default (all learners), '
+        "on the same data sets; a negative difference favours `credible`.",
+        "",
+    ]
+    for library in ("default", "parametric"):
+        compared = across_settings(f"{library}-credible", library)
+        if not compared.empty:
+            lines += [f"{library} libraries:", "", markdown_table(compared), ""]
+    diagnosis = coverage_table(summary, pd.concat(boot, ignore_index=True))
+    lines += [
+        "## Coverage: bias or interval width?",
+        "",
+        "`boot SE / SD` compares the mean reweighting-bootstrap SE with the Monte Carlo SD of the "
+        "estimates; `coverage if only bias` is the coverage of an interval of exactly the right "
+        "width around an estimator with this bias (normal errors).",
+        "",
+        markdown_table(diagnosis),
+        "",
+    ]
     lines += ["## Performance per estimator", ""]
     for setting, group in summary.groupby("setting", sort=False):
         table = summary_text(ordered(group.drop(columns="setting")))
