@@ -1114,7 +1114,9 @@ def _solve_projection(
             setattr(settings, name, value)
         try:
             solution = clarabel.DefaultSolver(*qp, settings).solve()
-        except Exception as exc:  # noqa: BLE001 - a crashing solve gets the next settings
+        except (KeyboardInterrupt, SystemExit):
+            raise
+        except BaseException as exc:  # noqa: BLE001 - a Rust panic is a BaseException in Python
             status = f"solver error: {type(exc).__name__}: {exc}"
             continue
         status = str(solution.status)
