@@ -4,8 +4,9 @@ Rows: the HiGHS range LP (one side of the mixed-minimax search), the same LP thr
 directly (overhead comparison only, not used by the package), the cvxpy reference, grid plus
 refinement on the same range objective, the tie-break QP (anchor infeasible; Clarabel called
 directly, after one warm-up call), one full riesz search with tie-break (what each bootstrap
-replicate runs) and the joint minimax grid search. Targets: LP median < 5 ms at K <= 10; grid+refine < 200 ms at K = 5
-(judged on wall-clock medians; CPU-time medians are printed beside them).
+replicate runs) and the joint minimax grid search. Targets: LP median < 5 ms at K <= 10;
+grid+refine < 200 ms at K = 5 (judged on wall-clock medians; CPU-time medians are printed beside
+them).
 
 Usage: .venv/bin/python benchmarks/bench_solvers.py [--quick]
 """
