@@ -82,8 +82,15 @@ def interrupt_when(args: list, cue: str, marker: str) -> tuple[int, str]:
     """Start ``args``, send SIGINT shortly after ``cue`` appears on stderr, return (code,
     stderr)."""
     env = {**os.environ, "OMP_NUM_THREADS": "1", "STACKDR_TEST_MARKER": marker}
+    # A shell without job control starts background jobs with SIGINT ignored, and the child
+    # would inherit that; restore the default so the run sees the Ctrl-C a terminal would send.
     proc = subprocess.Popen(
-        args, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True, env=env
+        args,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+        text=True,
+        env=env,
+        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL),
     )
     seen, chunks = threading.Event(), []
 
