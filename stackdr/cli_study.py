@@ -102,6 +102,12 @@ def register(subparsers) -> None:
     sim.add_argument(
         "--resume", action="store_true", help="continue the study in an existing study file"
     )
+    sim.add_argument(
+        "--allow-code-change",
+        action="store_true",
+        help="resume even though the stackdr code differs from the code that started the "
+        "study (each replicate records its code; summaries warn about the mix)",
+    )
     add_cluster_options(sim, "replicates")
     sim.add_argument("--no-progress", action="store_true", help="hide the progress bar")
     sim.set_defaults(run=run_simulate)
@@ -209,6 +215,7 @@ def run_simulate(args: argparse.Namespace) -> int:
             cluster=cluster,
             settings={"library": library, "estimator": settings},
             progress=not args.no_progress,
+            allow_code_change=args.allow_code_change,
         )
     except StudyExistsError as exc:
         raise InputError(f"{exc}: add --resume to continue it") from None

@@ -22,15 +22,22 @@ Results live in one SQLite file (WAL mode), with three tables: ``study`` (settin
 (one row per replicate and estimator). A replicate's rows and its marker are written in a single
 transaction by the parent process, so a study killed at any moment holds only whole replicates
 and can be resumed.
+
+Every study records the code that produced it (:func:`code_fingerprint`: the package version and a
+digest of the package's Python sources), in the study settings and on every replicate. Resuming a
+study with different code is refused unless asked for explicitly, because a table that mixes
+replicates from different versions of the estimator measures neither version.
 """
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import math
 import sqlite3
 import time
+import warnings
 from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import closing, nullcontext
 from dataclasses import dataclass
@@ -61,7 +68,7 @@ _SCHEMA = (
     """CREATE TABLE replicates (
     design TEXT NOT NULL, n INTEGER NOT NULL, rep INTEGER NOT NULL,
     data_seed INTEGER NOT NULL, estimator_seed INTEGER NOT NULL, truth REAL,
-    simulate_seconds REAL, seconds REAL, finished_at TEXT,
+    simulate_seconds REAL, seconds REAL, finished_at TEXT, code TEXT,
     PRIMARY KEY (design, n, rep)
     )""",
     """CREATE TABLE results (
@@ -78,6 +85,32 @@ class StudyExistsError(StackdrError, FileExistsError):
 
 class StudySettingsError(InputError):
     """A study was resumed with settings that differ from the stored ones."""
+
+
+class StudyCodeError(StudySettingsError):
+    """A study was resumed by code that differs from the code that started it."""
+
+
+class MixedCodeWarning(UserWarning):
+    """A study summary mixes replicates run by different versions of the code."""
+
+
+@functools.lru_cache(maxsize=1)
+def code_fingerprint() -> str:
+    """The package version and a digest of the package's Python sources, e.g. ``0.1.0+3f2a...``.
+
+    Two installs give the same fingerprint exactly when every ``.py`` file of the package is the
+    same, so it tells whether stored replicates came from the code now running. A user-supplied
+    replicate function's own code is not covered.
+    """
+    from stackdr import __version__
+
+    root = Path(__file__).resolve().parent
+    digest = hashlib.sha256()
+    for file in sorted(root.rglob("*.py")):
+        digest.update(file.relative_to(root).as_posix().encode() + b"\0")
+        digest.update(file.read_bytes() + b"\0")
+    return f"{__version__}+{digest.hexdigest()[:12]}"
 
 
 class ReplicateError(StackdrError, RuntimeError):
@@ -227,7 +260,37 @@ def _settings_differences(stored: Mapping[str, Any], given: Mapping[str, Any]) -
     return differences
 
 
-def _open_study(path: Path, identity: dict[str, Any], resume: bool) -> sqlite3.Connection:
+def _replicate_columns(conn: sqlite3.Connection) -> set[str]:
+    return {row[1] for row in conn.execute("PRAGMA table_info(replicates)")}
+
+
+def _check_code(
+    conn: sqlite3.Connection, path: Path, stored: Mapping[str, Any], allow_change: bool
+) -> None:
+    """Refuse to resume with different code unless ``allow_change``; then note the new code."""
+    current = code_fingerprint()
+    if stored.get("code") == current:
+        return
+    if not allow_change:
+        recorded = stored.get("code") or "a version that did not record its code"
+        raise StudyCodeError(
+            f"cannot resume {path}: it was started by stackdr {recorded} and this is "
+            f"stackdr {current}; replicates from different code would be mixed in one table. "
+            "Start a new study file, or allow it explicitly (--allow-code-change, Python: "
+            "allow_code_change=True); each replicate keeps the code that ran it"
+        )
+    with conn:
+        if "code" not in _replicate_columns(conn):  # a file from before code was recorded
+            conn.execute("ALTER TABLE replicates ADD COLUMN code TEXT")
+        codes = sorted({*stored.get("codes", [stored.get("code")]), current} - {None})
+        conn.execute(
+            "INSERT OR REPLACE INTO study (key, value) VALUES ('codes', ?)", (json.dumps(codes),)
+        )
+
+
+def _open_study(
+    path: Path, identity: dict[str, Any], resume: bool, allow_code_change: bool = False
+) -> sqlite3.Connection:
     existed = path.exists()
     if existed and not resume:
         raise StudyExistsError(
@@ -238,14 +301,21 @@ def _open_study(path: Path, identity: dict[str, Any], resume: bool) -> sqlite3.C
     try:
         has_tables = conn.execute("SELECT count(*) FROM sqlite_master").fetchone()[0] > 0
         if existed and has_tables:
-            differences = _settings_differences(_read_stored(conn, path), identity)
+            stored = _read_stored(conn, path)
+            differences = _settings_differences(stored, identity)
             if differences:
                 raise StudySettingsError(
                     f"cannot resume {path}: settings differ from the stored study: "
                     + "; ".join(differences)
                 )
+            _check_code(conn, path, stored, allow_code_change)
         else:
-            record = {**identity, "format": FORMAT, "created_at": _now()}
+            record = {
+                **identity,
+                "format": FORMAT,
+                "created_at": _now(),
+                "code": code_fingerprint(),
+            }
             # Explicit BEGIN: Python's sqlite3 would run the CREATE statements outside the
             # transaction, and a crash in between would leave a file without settings.
             conn.execute("BEGIN IMMEDIATE")
@@ -277,7 +347,7 @@ def _write_replicate(conn: sqlite3.Connection, outcome: dict[str, Any]) -> None:
         )
         conn.execute(
             "INSERT INTO replicates (design, n, rep, data_seed, estimator_seed, truth, "
-            "simulate_seconds, seconds, finished_at) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            "simulate_seconds, seconds, finished_at, code) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (
                 *key,
                 outcome["data_seed"],
@@ -286,6 +356,7 @@ def _write_replicate(conn: sqlite3.Connection, outcome: dict[str, Any]) -> None:
                 outcome["simulate_seconds"],
                 outcome["seconds"],
                 _now(),
+                code_fingerprint(),
             ),
         )
 
@@ -411,6 +482,7 @@ def run_study(
     cluster: Any = None,
     settings: Mapping[str, Any] | None = None,
     progress: bool = True,
+    allow_code_change: bool = False,
 ) -> StudyRun:
     """Run (or resume) a Monte Carlo study and store every replicate in a SQLite file.
 
@@ -450,6 +522,11 @@ def run_study(
         study; a resume must pass the same settings, seed and designs.
     progress : bool, default True
         Show a progress bar (stderr).
+    allow_code_change : bool, default False
+        Resume a study that was started by different stackdr code (see
+        :func:`code_fingerprint`). Off by default: the replicates of one table should come from
+        one version of the estimator. Each replicate records the code that ran it (column
+        ``code`` of :func:`read_results`) and :func:`summarise_study` warns about mixed codes.
 
     Returns
     -------
@@ -462,7 +539,7 @@ def run_study(
         The file exists and ``resume`` is False.
     StudySettingsError
         Resuming with a different seed, design list or settings; the message names each
-        difference.
+        difference. Its subclass ``StudyCodeError``: resuming with different code.
     ReplicateError
         ``replicate_fn`` failed; replicates finished before the failure stay stored.
     """
@@ -490,7 +567,7 @@ def run_study(
         "settings": json.loads(_to_json(dict(settings), "settings")),
     }
     path = Path(path)
-    with closing(_open_study(path, identity, resume)) as conn:
+    with closing(_open_study(path, identity, resume, allow_code_change)) as conn:
         done = set(conn.execute("SELECT design, n, rep FROM replicates"))
         todo = [
             (design, n, rep)
@@ -550,16 +627,18 @@ def read_results(path: str | Path) -> pd.DataFrame:
     -------
     pandas.DataFrame
         Columns design, target, n, rep, estimator, estimate, se, low, high, truth, weights (dict or
-        None), the replicate's data_seed, estimator_seed, simulate_seconds, seconds, and one column
-        per extra field. Sorted by design, n, rep, estimator.
+        None), the replicate's data_seed, estimator_seed, simulate_seconds, seconds, code (the
+        :func:`code_fingerprint` that ran it; None in files from before it was recorded), and
+        one column per extra field. Sorted by design, n, rep, estimator.
     """
     path = Path(path)
     with closing(_connect(path, create=False)) as conn:
         stored = _read_stored(conn, path)
+        code = "p.code" if "code" in _replicate_columns(conn) else "NULL AS code"
         frame = pd.read_sql_query(
             "SELECT r.design, r.n, r.rep, r.estimator, r.estimate, r.se, r.low, r.high, r.truth, "
-            "r.weights, r.extra, p.data_seed, p.estimator_seed, p.simulate_seconds, p.seconds "
-            "FROM results r JOIN replicates p USING (design, n, rep) "
+            "r.weights, r.extra, p.data_seed, p.estimator_seed, p.simulate_seconds, p.seconds, "
+            f"{code} FROM results r JOIN replicates p USING (design, n, rep) "
             "ORDER BY r.design, r.n, r.rep, r.estimator",
             conn,
         )
@@ -664,6 +743,14 @@ def summarise_study(path: str | Path) -> pd.DataFrame:
         mean_se, mean_se_mcse.
     """
     results = read_results(path)
+    codes = results["code"].fillna("unrecorded").unique()
+    if len(codes) > 1:
+        warnings.warn(
+            f"{path}: the replicates come from {len(codes)} versions of the stackdr code "
+            f"({', '.join(sorted(codes))}); the summary mixes them",
+            MixedCodeWarning,
+            stacklevel=2,
+        )
     rows = [
         {"design": design, "target": group["target"].iloc[0], "n": n, "estimator": estimator}
         | _performance(group)

@@ -7,6 +7,7 @@ inverse-probability-weighted estimator with the true propensity and an influence
 """
 
 import os
+import re
 import signal
 import sqlite3
 import subprocess
@@ -18,10 +19,13 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from stackdr import __version__ as stackdr_version
 from stackdr import study
 from stackdr.errors import InputError
 from stackdr.study import (
+    MixedCodeWarning,
     ReplicateError,
+    StudyCodeError,
     StudyExistsError,
     StudySettingsError,
     paired_differences,
@@ -393,3 +397,125 @@ def test_argument_validation(tmp_path):
     with pytest.raises(InputError, match="settings cannot be stored as JSON"):
         run_study(path, "sparse", 10, 1, difference_and_ipw, settings={"f": len}, progress=False)
     assert not path.exists()
+
+
+def test_resuming_with_different_code_is_refused_unless_allowed(tmp_path, monkeypatch):
+    # Replicates of one summary table should come from one version of the estimator.
+    path = tmp_path / "study.db"
+    first = study.code_fingerprint()
+    assert first.startswith(stackdr_version + "+") and first == study.code_fingerprint()
+    _study(path)
+    monkeypatch.setattr(study, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
+    with pytest.raises(StudyCodeError, match=rf"started by stackdr {re.escape(first)}"):
+        run_study(
+            path,
+            DESIGNS,
+            NS,
+            REPS + 1,
+            difference_and_ipw,
+            seed=SEED,
+            settings=SETTINGS,
+            resume=True,
+            progress=False,
+        )
+    assert _count_done(path) == len(DESIGNS) * len(NS) * REPS  # nothing written
+    run = run_study(
+        path,
+        DESIGNS,
+        NS,
+        REPS + 1,
+        difference_and_ipw,
+        seed=SEED,
+        settings=SETTINGS,
+        resume=True,
+        progress=False,
+        allow_code_change=True,
+    )
+    assert run.completed == len(DESIGNS) * len(NS)
+    codes = read_results(path).groupby("rep")["code"].unique()
+    assert all(list(c) == [first] for c in codes.loc[: REPS - 1])
+    assert list(codes.loc[REPS]) == ["9.9.9+feedbeefcafe"]
+    with pytest.warns(MixedCodeWarning, match="2 versions of the stackdr code"):
+        summarise_study(path)
+    # Resuming again with the same (new) code still needs the permission: the study started
+    # with other code.
+    with pytest.raises(StudyCodeError):
+        run_study(
+            path,
+            DESIGNS,
+            NS,
+            REPS + 1,
+            difference_and_ipw,
+            seed=SEED,
+            settings=SETTINGS,
+            resume=True,
+            progress=False,
+        )
+
+
+def test_files_from_before_code_was_recorded(tmp_path):
+    path = tmp_path / "old.db"
+    _study(path)
+    with sqlite3.connect(path) as conn:  # make it look like a file of the earlier layout
+        conn.execute("ALTER TABLE replicates DROP COLUMN code")
+        conn.execute("DELETE FROM study WHERE key = 'code'")
+    assert read_results(path)["code"].isna().all()
+    with pytest.raises(StudyCodeError, match="a version that did not record its code"):
+        run_study(
+            path,
+            DESIGNS,
+            NS,
+            REPS + 1,
+            difference_and_ipw,
+            seed=SEED,
+            settings=SETTINGS,
+            resume=True,
+            progress=False,
+        )
+    run_study(
+        path,
+        DESIGNS,
+        NS,
+        REPS + 1,
+        difference_and_ipw,
+        seed=SEED,
+        settings=SETTINGS,
+        resume=True,
+        progress=False,
+        allow_code_change=True,
+    )
+    codes = read_results(path)["code"]
+    assert codes.isna().sum() > 0 and (codes == study.code_fingerprint()).sum() > 0
+    with pytest.warns(MixedCodeWarning, match="unrecorded"):
+        summarise_study(path)
+
+
+def test_cli_refuses_a_code_change_with_one_line(tmp_path, monkeypatch, capsys):
+    from stackdr.cli import main
+
+    out = tmp_path / "cli.sqlite"
+    args = [
+        "simulate",
+        "--design",
+        "lunceford-davidian",
+        "--n",
+        "200",
+        "--reps",
+        "1",
+        "--library",
+        "parametric",
+        "--bootstrap",
+        "0",
+        "--out",
+        str(out),
+        "--no-progress",
+    ]
+    assert main(args) == 0
+    monkeypatch.setattr(study, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
+    capsys.readouterr()
+    assert main([*args[:6], "2", *args[7:], "--resume"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "--allow-code-change" in err[0] and "Traceback" not in err[0]
+    assert main([*args[:6], "2", *args[7:], "--resume", "--allow-code-change"]) == 0
+    assert main(["study", str(out)]) == 0
+    assert "2 versions of the stackdr code" in capsys.readouterr().err
