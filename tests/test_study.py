@@ -92,9 +92,9 @@ def _comparable(path):
     return read_results(path).drop(columns=TIMING)
 
 
-def _study(path, fn=difference_and_ipw, **kwargs):
+def _study(path, fn=difference_and_ipw, reps=REPS, **kwargs):
     options = {"seed": SEED, "settings": SETTINGS, "progress": False} | kwargs
-    return run_study(path, DESIGNS, NS, REPS, fn, **options)
+    return run_study(path, DESIGNS, NS, reps, fn, **options)
 
 
 @pytest.fixture(scope="module")
@@ -399,6 +399,11 @@ def test_argument_validation(tmp_path):
     assert not path.exists()
 
 
+def _extend(path, **kwargs):
+    """Resume the standard small study with one more replicate per (design, n)."""
+    return _study(path, reps=REPS + 1, resume=True, **kwargs)
+
+
 def test_resuming_with_different_code_is_refused_unless_allowed(tmp_path, monkeypatch):
     # Replicates of one summary table should come from one version of the estimator.
     path = tmp_path / "study.db"
@@ -407,30 +412,9 @@ def test_resuming_with_different_code_is_refused_unless_allowed(tmp_path, monkey
     _study(path)
     monkeypatch.setattr(study, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
     with pytest.raises(StudyCodeError, match=rf"started by stackdr {re.escape(first)}"):
-        run_study(
-            path,
-            DESIGNS,
-            NS,
-            REPS + 1,
-            difference_and_ipw,
-            seed=SEED,
-            settings=SETTINGS,
-            resume=True,
-            progress=False,
-        )
+        _extend(path)
     assert _count_done(path) == len(DESIGNS) * len(NS) * REPS  # nothing written
-    run = run_study(
-        path,
-        DESIGNS,
-        NS,
-        REPS + 1,
-        difference_and_ipw,
-        seed=SEED,
-        settings=SETTINGS,
-        resume=True,
-        progress=False,
-        allow_code_change=True,
-    )
+    run = _extend(path, allow_code_change=True)
     assert run.completed == len(DESIGNS) * len(NS)
     codes = read_results(path).groupby("rep")["code"].unique()
     assert all(list(c) == [first] for c in codes.loc[: REPS - 1])
@@ -440,17 +424,7 @@ def test_resuming_with_different_code_is_refused_unless_allowed(tmp_path, monkey
     # Resuming again with the same (new) code still needs the permission: the study started
     # with other code.
     with pytest.raises(StudyCodeError):
-        run_study(
-            path,
-            DESIGNS,
-            NS,
-            REPS + 1,
-            difference_and_ipw,
-            seed=SEED,
-            settings=SETTINGS,
-            resume=True,
-            progress=False,
-        )
+        _extend(path)
 
 
 def test_files_from_before_code_was_recorded(tmp_path):
@@ -461,29 +435,8 @@ def test_files_from_before_code_was_recorded(tmp_path):
         conn.execute("DELETE FROM study WHERE key = 'code'")
     assert read_results(path)["code"].isna().all()
     with pytest.raises(StudyCodeError, match="a version that did not record its code"):
-        run_study(
-            path,
-            DESIGNS,
-            NS,
-            REPS + 1,
-            difference_and_ipw,
-            seed=SEED,
-            settings=SETTINGS,
-            resume=True,
-            progress=False,
-        )
-    run_study(
-        path,
-        DESIGNS,
-        NS,
-        REPS + 1,
-        difference_and_ipw,
-        seed=SEED,
-        settings=SETTINGS,
-        resume=True,
-        progress=False,
-        allow_code_change=True,
-    )
+        _extend(path)
+    _extend(path, allow_code_change=True)
     codes = read_results(path)["code"]
     assert codes.isna().sum() > 0 and (codes == study.code_fingerprint()).sum() > 0
     with pytest.warns(MixedCodeWarning, match="unrecorded"):
