@@ -13,7 +13,13 @@ step from the full-sample weights, and the prediction-loss stacking estimate (a 
 propensity blend, not bilinear in the pair table) is expanded to first order in the propensity
 weights around the full-sample weights; both errors are second order in the replicate's weight
 change. The tie-break tolerance and the credible-direction masks are held at their full-sample
-values. Non-riesz blends evaluate phi(alpha) from the weighted rows in every replicate (slow).
+values. Non-riesz blends need phi(alpha) from the weighted rows in every replicate; this is exact,
+not approximated: phi at the lattice the search scans is computed for the whole chunk at once
+(row weights enter phi linearly, so it is one matrix product per repeat and component,
+:func:`~stackdr.pairtable.lattice_phi`), and every other call goes through
+:class:`~stackdr.pairtable.WeightedPhi`, which keeps the blend base (e.g. logit pi) and the
+weighted row terms of the replicate's nonzero rows. The search itself (lattice, starts, pattern
+search, polish, tie-break) is the full-sample one, unchanged, in every replicate.
 
 The refit bootstrap resamples rows and reruns everything, learner fits included: expensive,
 fully honest about the learners too.
@@ -30,8 +36,9 @@ import pandas as pd
 from joblib import Parallel, delayed
 
 from .errors import InputError, StackdrError
-from .pairtable import pair_rows
+from .pairtable import WeightedPhi, lattice_phi, pair_rows
 from .selection import discrete_pairs, pure_weights, run_search
+from .solvers import lattice_resolution, simplex_lattice
 from .stacking import (
     logloss_moment_features,
     logloss_stack_from_moments,
@@ -245,12 +252,12 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
     betas = np.empty((len(indices), K2))
     moved = np.zeros(len(indices), dtype=bool)
     t1 = time.perf_counter()
+    lattice = _replicate_lattice(inputs, settings, W, K1, K2)
     for col in range(len(indices)):
         Psi = Psi_b[col]
         phi_fn = None
         if settings.blend != "riesz":
-            w = W[:, col]
-            phi_fn = _weighted_phi(inputs, settings.blend, w)
+            phi_fn = _weighted_phi(inputs, settings.blend, W[:, col], lattice, col)
         search = run_search(
             Psi,
             settings,
@@ -297,11 +304,28 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
     )
 
 
-def _weighted_phi(inputs, blend, w):
-    from .pairtable import phi
+def _replicate_lattice(inputs, settings, W, K1: int, K2: int):
+    """For a nonlinear blend: the alpha lattice the replicate searches will scan (resolution,
+    points) and, per repeat, phi there for every replicate of the chunk (c, m, K2), from one
+    matrix product per component (:func:`lattice_phi`). None for the riesz blend."""
+    if settings.blend == "riesz":
+        return None
+    dims = [K1] if settings.criterion == "mixed" else [K1, K2]
+    r = lattice_resolution(dims, settings.resolution)
+    points = simplex_lattice(K1, r)
+    return r, points, [lattice_phi(inp, settings.blend, W, points) for inp in inputs]
+
+
+def _weighted_phi(inputs, blend, w, lattice, col: int):
+    """phi of replicate ``col`` (median over repeats), with the per-row work done once and the
+    lattice values looked up."""
+    r, points, values = lattice
+    evaluators = [WeightedPhi(inp, blend, w, (r, points, v[col])) for inp, v in zip(inputs, values)]
+    if len(evaluators) == 1:
+        return evaluators[0]
 
     def phi_fn(alphas):
-        return np.median(np.stack([phi(inp, alphas, blend, w) for inp in inputs]), axis=0)
+        return np.median(np.stack([ev(alphas) for ev in evaluators]), axis=0)
 
     return phi_fn
 

@@ -30,7 +30,7 @@ import clarabel
 import cvxpy as cp
 import numpy as np
 from numpy.typing import ArrayLike
-from scipy.optimize import linprog, minimize
+from scipy.optimize import minimize
 from scipy.sparse import csc_matrix
 
 from stackdr.errors import InputError
@@ -43,6 +43,7 @@ __all__ = [
     "minimise_range_cvxpy",
     "simplex_lattice",
     "lattice_size",
+    "lattice_resolution",
     "grid_refine",
     "tie_break_range",
     "tie_break_general",
@@ -355,15 +356,37 @@ def _highs_range_lp(cost, A_ub, b_ub, A_eq, bounds) -> tuple[bool, np.ndarray, s
     tolerances with presolve matched cvxpy to 1e-9 on such tables.
     Returns (optimal?, x, model status text, simplex iterations).
     """
+    return _highs_lp("range", cost, A_ub, b_ub, A_eq, np.ones(A_eq.shape[0]), bounds)
+
+
+# Options of the thread-local HiGHS solvers: "range" for the range LP (see _highs_range_lp);
+# "model" for the cutting-plane model LP of the polish: dual simplex and default tolerances as
+# scipy's linprog(method="highs") sets them (used before), presolve off. On these LPs (at most
+# 10 (D + 1) cuts) presolve cost more than the solve: the riesz/minimax bootstrap search went
+# from 133 to 36 ms per replicate with only this option changed. The minimax local search can
+# then take a different path now and then (weights 5e-8, objectives 2e-8 apart in one replicate
+# of tests/test_bootstrap_speed_paths.py; identical in the others).
+_HIGHS_OPTIONS = {
+    "range": {"primal_feasibility_tolerance": 1e-10, "dual_feasibility_tolerance": 1e-10},
+    "model": {"simplex_strategy": 1, "presolve": "off"},
+}
+
+
+def _highs_lp(kind, cost, A_ub, b_ub, A_eq, b_eq, bounds) -> tuple[bool, np.ndarray, str, int]:
+    """Solve min cost'x s.t. A_ub x <= b_ub, A_eq x = b_eq, bounds, with the thread's HiGHS
+    solver for ``kind`` (a key of ``_HIGHS_OPTIONS``).
+
+    Returns (optimal?, x, model status text, simplex iterations).
+    """
     import highspy
 
-    h = getattr(_HIGHS, "solver", None)
+    h = getattr(_HIGHS, kind, None)
     if h is None:
         h = _quiet(highspy.Highs)
         h.setOptionValue("output_flag", False)
-        h.setOptionValue("primal_feasibility_tolerance", 1e-10)
-        h.setOptionValue("dual_feasibility_tolerance", 1e-10)
-        _HIGHS.solver = h
+        for name, value in _HIGHS_OPTIONS[kind].items():
+            h.setOptionValue(name, value)
+        setattr(_HIGHS, kind, h)
     inf = highspy.kHighsInf
     matrix = csc_matrix(np.vstack([A_ub, A_eq]))
     lp = highspy.HighsLp()
@@ -371,8 +394,8 @@ def _highs_range_lp(cost, A_ub, b_ub, A_eq, bounds) -> tuple[bool, np.ndarray, s
     lp.col_cost_ = cost
     lp.col_lower_ = np.where(np.isfinite(bounds[:, 0]), bounds[:, 0], -inf)
     lp.col_upper_ = np.where(np.isfinite(bounds[:, 1]), bounds[:, 1], inf)
-    lp.row_lower_ = np.r_[np.full(b_ub.size, -inf), np.ones(A_eq.shape[0])]
-    lp.row_upper_ = np.r_[b_ub, np.ones(A_eq.shape[0])]
+    lp.row_lower_ = np.r_[np.full(b_ub.size, -inf), b_eq]
+    lp.row_upper_ = np.r_[b_ub, b_eq]
     lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
     lp.a_matrix_.start_ = matrix.indptr
     lp.a_matrix_.index_ = matrix.indices
@@ -479,8 +502,36 @@ def lattice_size(dims: Sequence[int], resolution: int) -> int:
     return math.prod(math.comb(resolution + k - 1, k - 1) for k in dims)
 
 
-def _capped_resolution(dims: Sequence[int], requested: int, max_points: int) -> int:
-    r = requested
+def lattice_resolution(
+    dims: Sequence[int] | int,
+    resolution: int | None = None,
+    max_points: int = _DEFAULT_MAX_POINTS,
+) -> int:
+    """The lattice denominator :func:`grid_refine` uses for these settings.
+
+    Parameters
+    ----------
+    dims : sequence of int or int
+        Block sizes.
+    resolution : int, optional
+        Requested denominator (default 20).
+    max_points : int, default 20000
+        Cap on the product lattice size; the denominator is lowered until the lattice fits,
+        never below 1.
+
+    Returns
+    -------
+    int
+
+    Examples
+    --------
+    >>> lattice_resolution([4]), lattice_resolution([4, 4])
+    (20, 7)
+    """
+    dims = _checked_dims(dims)
+    r = _DEFAULT_RESOLUTION if resolution is None else int(resolution)
+    if r < 1:
+        raise InputError(f"resolution must be >= 1, got {resolution}")
     while r > 1 and lattice_size(dims, r) > max_points:
         r -= 1
     return r
@@ -670,18 +721,12 @@ def _model_minimum(
     tau_floor = -np.inf if lower_bound is None else (lower_bound - fx) / radius
     lower = np.append(np.maximum(-x / radius, -1.0), tau_floor)
     upper = np.append(np.minimum((1.0 - x) / radius, 1.0), np.inf)
-    res = linprog(
-        cost,
-        A_ub=A_ub,
-        b_ub=b_ub,
-        A_eq=A_eq,
-        b_eq=np.zeros(len(dims)),
-        bounds=np.column_stack([lower, upper]),
-        method="highs",
+    ok, solution, _, _ = _highs_lp(
+        "model", cost, A_ub, b_ub, A_eq, np.zeros(len(dims)), np.column_stack([lower, upper])
     )
-    if res.status != 0 or res.x is None:
+    if not ok or not np.all(np.isfinite(solution)):
         return None
-    return _clean_simplex(x + radius * res.x[:D], dims), fx + radius * float(res.x[D])
+    return _clean_simplex(x + radius * solution[:D], dims), fx + radius * float(solution[D])
 
 
 def _cutting_plane_polish(
@@ -853,9 +898,7 @@ def grid_refine(
     started = time.perf_counter()
     dims = _checked_dims(dims)
     requested = _DEFAULT_RESOLUTION if resolution is None else int(resolution)
-    if requested < 1:
-        raise InputError(f"resolution must be >= 1, got {resolution}")
-    r = _capped_resolution(dims, requested, max_points)
+    r = lattice_resolution(dims, requested, max_points)
     f = _CountedObjective(objective, sum(dims))
     lattices = [_cached_lattice(k, r) for k in dims]
     n_starts = max(1, int(n_starts))
