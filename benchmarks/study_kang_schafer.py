@@ -218,7 +218,7 @@ def across_settings(setting_a: str, setting_b: str) -> pd.DataFrame:
 
 
 def report() -> None:
-    summaries, paired, moved, boot = [], [], [], []
+    summaries, paired, moved, boot, codes = [], [], [], [], set()
     for setting in SETTINGS:
         path = study_path(setting)
         if not path.exists():
@@ -229,6 +229,8 @@ def report() -> None:
         summary.insert(0, "setting", setting)
         summaries.append(summary)
         results = read_results(path)
+        if "code" in results:  # study files record the stackdr code that ran each replicate
+            codes |= set(results["code"].fillna("not recorded"))
         boot.append(
             results.groupby(["design", "n", "estimator"])["bootstrap_se"]
             .mean()
@@ -258,6 +260,8 @@ def report() -> None:
         "`parametric-c1` the parametric libraries with c = 0 and 1; `default-credible`, "
         "`parametric-credible` with directions only from learners whose out-of-fold loss is "
         "within 25% of the best on their side.",
+        "",
+        f"Code that ran the replicates: {', '.join(sorted(codes)) or 'not recorded'}.",
         "",
         *goals_lines(pairs, summary),
         "## Paired differences (estimator minus prediction-loss stacking)",
