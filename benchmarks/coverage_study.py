@@ -67,6 +67,7 @@ def report() -> None:
         print("no results yet")
         return
     results = read_results(PATH)
+    codes = sorted(set(results["code"].fillna("not recorded")))
     rows = []
     for (design, estimator), group in results.groupby(["design", "estimator"], sort=False):
         boot = coverage(group, "low", "high")
@@ -128,6 +129,14 @@ def report() -> None:
         f"Written {time.strftime('%Y-%m-%d %H:%M')} by benchmarks/coverage_study.py. "
         f"95% intervals: reweighting bootstrap (B = {BOOTSTRAP}, percentile) and Wald "
         "(influence-function SE). Monte Carlo SEs in parentheses. Goal 0.93-0.97.",
+        "",
+        f"Code that ran the replicates: {', '.join(codes)}."
+        + (
+            " A file without a recorded code was run at git commit 5957cf6, just before study "
+            "files began to record it."
+            if "not recorded" in codes
+            else ""
+        ),
         "",
         "## Target-aimed and prediction-loss stacking",
         "",
