@@ -386,6 +386,14 @@ def _bootstrap(r: dict, figs: dict) -> str:
         f"replicate {how} and reruns the whole weight search, so the spread includes the "
         "uncertainty of choosing the weights. The shaded band is the "
         f"{boot['method']} interval; the black line is the estimate."
+        + (
+            ""
+            if boot["kind"] == "refit"
+            else " The learner fits are held fixed, so the variability of refitting the "
+            "learners is left out; with unstable learners (e.g. unpenalised models on many "
+            "features) this can make the interval too narrow, and the refit bootstrap "
+            "(--bootstrap-kind refit) includes it."
+        )
     )
     if "bootstrap" in figs:
         out += _figure("bootstrap", figs["bootstrap"], "Bootstrap distributions")
