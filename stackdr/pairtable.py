@@ -103,13 +103,7 @@ def blended_weight_side(inp: PairInputs, alphas: np.ndarray, blend: str) -> list
         return [P @ alphas.T for P in inp.P]
     if blend not in BLENDS:
         raise InputError(f"unknown blend {blend!r}; choose one of {', '.join(BLENDS)}")
-    if blend == "logit":
-        if inp.propensity_kind != "classifier":
-            raise InputError("the logit blend needs a binary treatment (probabilities)")
-        pi = expit(logit(inp.pi) @ alphas.T)
-    else:
-        pi = inp.pi @ alphas.T
-    return [np.asarray(t(pi), dtype=float) for t in inp.transforms]
+    return _from_base(inp, _blend_base(inp, blend), alphas, blend)
 
 
 def phi(

@@ -267,7 +267,8 @@ def _replicate_columns(conn: sqlite3.Connection) -> set[str]:
 def _check_code(
     conn: sqlite3.Connection, path: Path, stored: Mapping[str, Any], allow_change: bool
 ) -> None:
-    """Refuse to resume with different code unless ``allow_change``; then note the new code."""
+    """Refuse to resume with different code unless ``allow_change``. Which code ran each
+    replicate is kept on the replicate itself (column ``code``)."""
     current = code_fingerprint()
     if stored.get("code") == current:
         return
@@ -279,13 +280,9 @@ def _check_code(
             "Start a new study file, or allow it explicitly (--allow-code-change, Python: "
             "allow_code_change=True); each replicate keeps the code that ran it"
         )
-    with conn:
-        if "code" not in _replicate_columns(conn):  # a file from before code was recorded
+    if "code" not in _replicate_columns(conn):  # a file from before code was recorded
+        with conn:
             conn.execute("ALTER TABLE replicates ADD COLUMN code TEXT")
-        codes = sorted({*stored.get("codes", [stored.get("code")]), current} - {None})
-        conn.execute(
-            "INSERT OR REPLACE INTO study (key, value) VALUES ('codes', ?)", (json.dumps(codes),)
-        )
 
 
 def _open_study(
