@@ -35,10 +35,12 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import RESULTS, print_table, write_json  # noqa: E402
 
 from stackdr import BlendEstimator  # noqa: E402
-from stackdr.crossfit import CrossFitResult  # noqa: E402
-from stackdr.data import PreparedData  # noqa: E402
-from stackdr.designs import get_design  # noqa: E402
-from stackdr.targets import get_target  # noqa: E402
+from stackdr.core import get_target  # noqa: E402
+from stackdr.estimation import (
+    CrossFitResult,  # noqa: E402
+    PreparedData,  # noqa: E402
+)
+from stackdr.studies import get_design  # noqa: E402
 
 K = 5
 B = 1000

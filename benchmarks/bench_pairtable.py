@@ -16,12 +16,19 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import measure, print_table, write_json  # noqa: E402
 
-from stackdr.crossfit import CrossFitResult, cross_fit  # noqa: E402
-from stackdr.data import prepare_data  # noqa: E402
-from stackdr.designs import get_design  # noqa: E402
-from stackdr.learners import make_learner  # noqa: E402
-from stackdr.pairtable import pair_inputs, pair_standard_errors, pair_table  # noqa: E402
-from stackdr.targets import get_target  # noqa: E402
+from stackdr.core import (  # noqa: E402
+    get_target,  # noqa: E402
+    pair_inputs,
+    pair_standard_errors,
+    pair_table,
+)
+from stackdr.estimation import (  # noqa: E402
+    CrossFitResult,
+    cross_fit,
+    make_learner,  # noqa: E402
+    prepare_data,  # noqa: E402
+)
+from stackdr.studies import get_design  # noqa: E402
 
 
 def libraries():

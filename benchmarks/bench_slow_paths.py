@@ -4,7 +4,7 @@ The default (riesz blend, mixed criterion) solves two LPs per replicate. The oth
 (``probability``, ``logit``) search alpha on a simplex lattice with refinement in every replicate,
 and the ``minimax`` criterion searches (alpha, beta) jointly; this benchmark times those paths.
 
-Setting: the demo scenario of ``stackdr demo`` (:func:`stackdr.demo.simulate_demo`, n = 2000,
+Setting: the demo scenario of ``stackdr demo`` (:func:`stackdr.studies.simulate_demo`, n = 2000,
 seed 2026, default learner libraries), cross-fitted once; then for every blend in {riesz,
 probability, logit} and criterion in {mixed, minimax} the analysis is rerun with B = 200
 multinomial replicates on one worker (``BlendEstimator.analyse``). Reported: bootstrap seconds,
@@ -31,9 +31,9 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import RESULTS, print_table, write_json  # noqa: E402
 
 from stackdr import BlendEstimator  # noqa: E402
-from stackdr.data import prepare_data  # noqa: E402
-from stackdr.demo import simulate_demo  # noqa: E402
-from stackdr.targets import get_target  # noqa: E402
+from stackdr.core import get_target  # noqa: E402
+from stackdr.estimation import prepare_data  # noqa: E402
+from stackdr.studies import simulate_demo  # noqa: E402
 
 BLENDS = ("riesz", "probability", "logit")
 CRITERIA = ("mixed", "minimax")

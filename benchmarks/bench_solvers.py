@@ -23,7 +23,7 @@ import numpy as np
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import print_table, write_json  # noqa: E402
 
-from stackdr.solvers import (  # noqa: E402
+from stackdr.search import (  # noqa: E402
     grid_refine,
     minimise_range_cvxpy,
     minimise_range_lp,

@@ -29,14 +29,17 @@ for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 
-from stackdr.simulation import make_replicate  # noqa: E402
-from stackdr.study import read_results, run_study  # noqa: E402
-from stackdr.study_report import (  # noqa: E402
+from stackdr.reporting import (  # noqa: E402
     ESTIMATOR_ORDER,
     markdown_table,
     text_table,
     with_mcse,
 )  # noqa: E402
+from stackdr.studies import (  # noqa: E402
+    make_replicate,  # noqa: E402
+    read_results,
+    run_study,
+)
 
 RESULTS = Path(__file__).resolve().parent / "results"
 PATH = RESULTS / "coverage.sqlite"

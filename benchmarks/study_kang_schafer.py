@@ -33,15 +33,20 @@ import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402
 from scipy.stats import norm  # noqa: E402
 
-from stackdr.simulation import make_replicate  # noqa: E402
-from stackdr.study import paired_differences, read_results, run_study, summarise_study  # noqa: E402
-from stackdr.study_report import (  # noqa: E402
+from stackdr.reporting import (  # noqa: E402
     markdown_table,
     ordered,
     summary_text,
     text_table,
     with_mcse,
 )  # noqa: E402
+from stackdr.studies import (  # noqa: E402
+    make_replicate,  # noqa: E402
+    paired_differences,
+    read_results,
+    run_study,
+    summarise_study,
+)
 
 RESULTS = Path(__file__).resolve().parent / "results"
 DESIGNS = ["kang-schafer-transformed", "kang-schafer-ate-transformed"]

@@ -15,7 +15,7 @@ import argparse
 import os
 
 from stackdr import BlendEstimator
-from stackdr.demo import DESCRIPTION, simulate_demo
+from stackdr.studies import DESCRIPTION, simulate_demo
 
 
 def main(small: bool = False) -> None:

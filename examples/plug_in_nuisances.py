@@ -1,6 +1,6 @@
 """Plug the exported blended nuisances into other estimators: IPW and a TMLE targeting step.
 
-The exported table (``stackdr.export.blended_nuisances``, or ``nuisances.csv`` written by
+The exported table (``stackdr.blended_nuisances``, or ``nuisances.csv`` written by
 ``stackdr estimate`` / ``stackdr demo``) holds, per row, the cross-fitted outcome regressions
 mu1, mu0 at the chosen outcome weights and the weight-side values weight_mu1 = 1/pi and
 weight_mu0 = 1/(1 - pi) at the chosen propensity weights. From them this example computes, for
@@ -30,9 +30,8 @@ from scipy.optimize import minimize_scalar
 from scipy.special import expit, logit
 
 from stackdr import BlendEstimator
-from stackdr.demo import simulate_demo
-from stackdr.export import blended_nuisances
-from stackdr.serialise import read_results_json
+from stackdr.io import blended_nuisances, read_results_json
+from stackdr.studies import simulate_demo
 
 # Outcome bounds for the logistic fluctuation are kept away from 0 and 1 by this margin
 # (common practice, so logits stay finite).

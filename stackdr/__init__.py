@@ -1,19 +1,48 @@
-"""stackdr: target-aimed convex stacking of nuisance learners for doubly robust functionals."""
+"""stackdr: target-aimed convex stacking of nuisance learners for doubly robust functionals.
+
+The public API is listed in ``__all__``. The subpackages follow the layers of the design (data
+flows one way, lower layers never import higher ones):
+
+- :mod:`stackdr.core`: targets, pair table, pseudo-risks, prediction-loss stacking (pure maths);
+- :mod:`stackdr.search`: the weight search (range LP, lattice search, tie-breaks) and selectors;
+- :mod:`stackdr.inference`: reweighting and refit bootstraps;
+- :mod:`stackdr.estimation`: data validation, learners, cross-fitting, the estimator, results;
+- :mod:`stackdr.io`: saved results, configuration files, exported nuisances and blended models;
+- :mod:`stackdr.studies`: designs with known truth, the study replicate, runner and summaries;
+- :mod:`stackdr.reporting`: figures and HTML pages;
+- :mod:`stackdr.cli`: the command line.
+"""
 
 __version__ = "0.1.0"
 
-from .errors import InputError, LearnerError, StackdrError  # noqa: E402
-from .estimator import BlendEstimator  # noqa: E402
-from .results import BlendResult  # noqa: E402
-from .targets import Component, Target, get_target  # noqa: E402
+from stackdr.core import Component, Target, get_target  # noqa: E402
+from stackdr.errors import InputError, LearnerError, PositivityWarning, StackdrError  # noqa: E402
+from stackdr.estimation import BlendEstimator, BlendResult  # noqa: E402
+from stackdr.io import (  # noqa: E402
+    BlendedClassifier,
+    BlendedRegressor,
+    blended_models,
+    blended_nuisances,
+    read_results_json,
+)
+from stackdr.studies import make_replicate, register_design, run_study  # noqa: E402
 
 __all__ = [
     "BlendEstimator",
     "BlendResult",
+    "BlendedClassifier",
+    "BlendedRegressor",
     "Component",
     "InputError",
     "LearnerError",
+    "PositivityWarning",
     "StackdrError",
     "Target",
+    "blended_models",
+    "blended_nuisances",
     "get_target",
+    "make_replicate",
+    "read_results_json",
+    "register_design",
+    "run_study",
 ]

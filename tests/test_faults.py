@@ -28,12 +28,11 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 
 from stackdr import BlendEstimator
 from stackdr.cli import main
-from stackdr.config import load_config
 from stackdr.errors import InputError, LearnerError, PositivityWarning
-from stackdr.serialise import read_results_json
+from stackdr.io import load_config, read_results_json
 
-from .helpers import KnownRegressor, confounded_data
-from .test_cli import QUICK as CLI_QUICK
+from tests.helpers import KnownRegressor, confounded_data
+from tests.cli.test_cli import QUICK as CLI_QUICK
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 
@@ -570,7 +569,7 @@ def _lp_crash(*args, **kwargs):
     ids=["LP solver reports failure", "LP solver raises"],
 )
 def test_failed_lp_falls_back_to_a_vertex(monkeypatch, replacement, message):
-    monkeypatch.setattr("stackdr.solvers._highs_range_lp", replacement)
+    monkeypatch.setattr("stackdr.search._solvers._highs_range_lp", replacement)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         result = fit(tie_break=False)

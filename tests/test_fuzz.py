@@ -29,12 +29,12 @@ from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
 from stackdr.cli import main
-from stackdr.config import estimator_kwargs, load_config, resolve_settings
 from stackdr.errors import InputError
-from stackdr.estimator import BlendEstimator
+from stackdr.estimation import BlendEstimator
+from stackdr.io import estimator_kwargs, load_config, resolve_settings
 
-from .test_cli import QUICK
-from .test_faults import estimate_args as fault_args
+from tests.cli.test_cli import QUICK
+from tests.test_faults import estimate_args as fault_args
 
 # Whole pipeline runs (report figures included) cost about two seconds each: few examples, no
 # shrinking. Cheap inputs that fail in validation get more. STACKDR_FUZZ_SCALE=10 (say) runs ten

@@ -1,0 +1,3 @@
+from stackdr.cli._main import main
+
+__all__ = ["main"]

@@ -1,0 +1,7 @@
+"""``python -m stackdr.cli``: the command line."""
+
+import sys
+
+from stackdr.cli import main
+
+sys.exit(main())

@@ -1,0 +1,589 @@
+"""The ``stackdr`` command line: ``estimate``, ``report``, ``learners`` and ``demo``.
+
+Each command group is a ``register(subparsers)`` function listed in :data:`COMMAND_GROUPS`; a
+command stores its handler with ``set_defaults(run=handler)``. User mistakes exit with code 2 and
+one line ``stackdr: error: ...`` on stderr; unexpected failures exit with code 1 and a hint to
+rerun with ``--debug`` for the traceback.
+"""
+
+from __future__ import annotations
+
+import argparse
+import contextlib
+import csv
+import io
+import json
+import os
+import re
+import sys
+import traceback
+import warnings
+from pathlib import Path
+
+import pandas as pd
+
+from stackdr import __version__
+from stackdr.cli._study import add_cluster_options, cluster_from_args
+from stackdr.cli._study import register as register_study
+from stackdr.core import BLENDS, TARGET_NAMES
+from stackdr.errors import InputError, StackdrError
+from stackdr.estimation import BOOTSTRAP_KINDS, CAUTION
+from stackdr.io import SETTINGS, estimator_kwargs, load_config, resolve_settings
+from stackdr.search import CRITERIA
+
+CSV_SUFFIXES = (".csv", ".tsv", ".txt")
+PARQUET_SUFFIXES = (".parquet", ".pq")
+DELIMITERS = (",", ";", "\t", "|")
+_DECIMAL_COMMA = re.compile(r"^[-+]?\d+(,\d+)?([eE][-+]?\d+)?$")
+
+
+class Parser(argparse.ArgumentParser):
+    """argparse with one-line error messages (exit code 2 as usual)."""
+
+    def error(self, message: str):
+        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
+
+
+# ----------------------------------------------------------------------------- reading data
+
+
+def _sniff_delimiter(sample: str) -> str:
+    """The first of , ; tab | that splits the sample's lines into a constant number (> 1) of
+    quoted-aware fields; comma when none does."""
+    lines = sample.splitlines()
+    if len(lines) > 1 and not sample.endswith(("\n", "\r")):
+        lines = lines[:-1]  # the sample may end mid-line
+    lines = [line for line in lines[:50] if line.strip()]
+    for delimiter in DELIMITERS:
+        widths = {len(row) for row in csv.reader(lines, delimiter=delimiter)}
+        if len(widths) == 1 and widths.pop() > 1:
+            return delimiter
+    return ","
+
+
+def _numeric_text_columns(frame: pd.DataFrame, decimal_comma: bool) -> pd.DataFrame:
+    """Turn text columns holding only numbers (quoted, padded, or with a decimal comma in a
+    semicolon file) into numbers, so they are not mistaken for categories."""
+    for col in frame.columns:
+        series = frame[col]
+        if (
+            pd.api.types.is_numeric_dtype(series)
+            or series.dtype == bool
+            or not series.notna().any()
+        ):
+            continue
+        text = series.where(series.isna(), series.astype(str).str.strip())
+        if decimal_comma and text.dropna().str.match(_DECIMAL_COMMA).all():
+            text = text.str.replace(",", ".", regex=False)
+        converted = pd.to_numeric(text, errors="coerce")
+        if converted.notna().sum() == series.notna().sum():
+            frame[col] = converted
+    return frame
+
+
+def read_table(path: str | Path) -> pd.DataFrame:
+    """Read a CSV or Parquet data file (chosen by extension).
+
+    CSV files are read robustly: a UTF-8 byte-order mark is dropped (Latin-1 is the fallback
+    for files that are not UTF-8), the delimiter (comma, semicolon, tab or bar) is detected
+    from the first lines, quoted or padded numbers are read as numbers, and in semicolon files
+    a decimal comma is accepted. Column names are stripped of surrounding spaces.
+
+    Parameters
+    ----------
+    path : str or Path
+
+    Returns
+    -------
+    DataFrame
+
+    Raises
+    ------
+    InputError
+        Missing, empty or unreadable file, or an unsupported extension.
+    """
+    path = Path(path)
+    label = f"data file {str(path)!r}"
+    if not path.exists():
+        raise InputError(f"{label} not found")
+    if path.is_dir():
+        raise InputError(f"{label} is a folder, not a file")
+    suffix = path.suffix.lower()
+    if suffix in PARQUET_SUFFIXES:
+        try:
+            frame = pd.read_parquet(path)
+        except (OSError, ValueError, ImportError) as exc:
+            raise InputError(f"cannot read {label} as Parquet: {exc}") from None
+    elif suffix in CSV_SUFFIXES:
+        raw = path.read_bytes()
+        try:
+            text = raw.decode("utf-8-sig")
+        except UnicodeDecodeError:
+            text = raw.decode("latin-1")
+        if not text.strip():
+            raise InputError(f"{label} is empty")
+        delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text[:65536])
+        # pandas renames a repeated header ("x", "x.1") silently; a repeated name is ambiguous.
+        try:
+            first = next(csv.reader(io.StringIO(text), delimiter=delimiter))
+        except csv.Error as exc:
+            raise InputError(f"cannot read {label} as CSV: {exc}") from None
+        header = [h.strip() for h in first]
+        repeated = sorted({h for h in header if header.count(h) > 1})
+        if repeated:
+            raise InputError(
+                f"{label} has duplicated column names: {', '.join(map(repr, repeated))}"
+            )
+        try:
+            frame = pd.read_csv(io.StringIO(text), sep=delimiter, skipinitialspace=True)
+        except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
+            message = str(exc).strip().splitlines()[-1] if str(exc).strip() else "parse error"
+            raise InputError(f"cannot read {label} as CSV: {message}") from None
+        frame = _numeric_text_columns(frame, decimal_comma=delimiter == ";")
+    else:
+        raise InputError(
+            f"{label} has extension {path.suffix or '(none)'!r}; give a .csv or .parquet file"
+        )
+    frame.columns = [str(c).strip() for c in frame.columns]
+    if len(frame) == 0:
+        raise InputError(f"{label} has column names but no data rows")
+    return frame
+
+
+# ----------------------------------------------------------------------------- writing results
+
+
+def _write_outputs(result, out_dir: Path, *, overwrite: bool, run: dict) -> dict:
+    """nuisances.csv and the report first, results.json last (atomically), so an interrupted
+    run leaves no results.json behind and a rerun needs no --overwrite."""
+    from stackdr.io import (
+        atomic_write,
+        blended_nuisances,
+        plain,
+        result_to_dict,
+        write_results_json,
+    )
+    from stackdr.reporting import write_report
+
+    results = result_to_dict(result)
+    results["run"] = run
+    # The report is built from exactly what results.json will hold, so `stackdr report`
+    # rebuilds it byte for byte.
+    results = json.loads(json.dumps(plain(results, "results"), allow_nan=False))
+    out_dir.mkdir(parents=True, exist_ok=True)
+    table = blended_nuisances(result)
+    nuisances = atomic_write(
+        out_dir / "nuisances.csv", table.to_csv(index=False).encode("utf-8"), overwrite=True
+    )
+    report = write_report(results, out_dir)
+    written = write_results_json(results, out_dir / "results.json", overwrite=overwrite)
+    return {"results": written, "report": report, "nuisances": nuisances}
+
+
+def _print_written(paths: dict) -> None:
+    print("Written:")
+    for label, path in paths.items():
+        print(f"  {label:<10} {path}")
+
+
+# ----------------------------------------------------------------------------- commands
+
+
+def _run_estimate(args: argparse.Namespace) -> int:
+    from stackdr.core import get_target
+    from stackdr.estimation import BlendEstimator
+
+    config = load_config(args.config) if args.config else None
+    given = {key: getattr(args, key, None) for key in SETTINGS}
+    values, _ = resolve_settings(given, config)
+    for key in ("data", "treatment", "outcome", "target", "out"):
+        if key not in values:
+            how = "the DATA argument" if key == "data" else "--" + key
+            raise InputError(
+                f"missing {how}: give it on the command line or as {key} = ... "
+                "under [settings] in a --config file"
+            )
+    out_dir = Path(values["out"]).expanduser()
+    overwrite = bool(values.get("overwrite", False))
+    if out_dir.exists() and not out_dir.is_dir():
+        raise InputError(f"output folder {str(out_dir)!r} is a file")
+    # Checked before the fits, so a long run does not fail only when it comes to write.
+    nearest = next(p for p in (out_dir.absolute(), *out_dir.absolute().parents) if p.exists())
+    if not nearest.is_dir() or not os.access(nearest, os.W_OK | os.X_OK):
+        raise InputError(f"output folder {str(out_dir)!r} cannot be written ({str(nearest)!r})")
+    if (out_dir / "results.json").exists() and not overwrite:
+        raise InputError(
+            f"{out_dir / 'results.json'} already exists; pass --overwrite to replace it"
+        )
+    frame = read_table(values["data"])
+    target = get_target(values["target"])
+    treatment = values["treatment"]
+    if config is not None and treatment in frame.columns:
+        coded = pd.to_numeric(frame[treatment], errors="coerce").dropna()
+        binary = target.binary_treatment or bool(coded.isin([0, 1]).all())
+        config.check_kinds("classifier" if binary else "regressor")
+    kwargs = {"progress": True, **estimator_kwargs(values)}
+    backend, cluster = cluster_from_args(args)
+    if backend is not None:
+        kwargs.update(backend=backend, cluster=cluster)
+    estimator = BlendEstimator(
+        target,
+        config.library("propensity") if config else None,
+        config.library("outcome") if config else None,
+        **kwargs,
+    )
+    result = estimator.fit(frame, treatment, values["outcome"], values.get("covariates"))
+    run = {
+        "command": "estimate",
+        "data_file": str(Path(values["data"]).resolve()),
+        "config_file": str(config.path.resolve()) if config and config.path else None,
+        "learners": config.describe() if config else None,
+    }
+    paths = _write_outputs(result, out_dir, overwrite=overwrite, run=run)
+    _print_written(paths)
+    print()
+    result.summary()
+    return 0
+
+
+def _run_report(args: argparse.Namespace) -> int:
+    from stackdr.io import read_results_json
+    from stackdr.reporting import write_report
+
+    source = Path(args.results)
+    results = read_results_json(source)
+    out_dir = Path(args.out) if args.out else source.parent
+    print(f"Report written: {write_report(results, out_dir)}")
+    return 0
+
+
+def learner_table() -> str:
+    """The learner catalogue as aligned text: name, kind, parameters (defaults), description."""
+    from stackdr.estimation import CATALOGUE
+
+    rows = [
+        (
+            name,
+            entry.kind,
+            ", ".join(f"{k}={v!r}" for k, v in entry.defaults.items()) or "-",
+            entry.description,
+        )
+        for name, entry in CATALOGUE.items()
+    ]
+    heads = ("name", "kind", "parameters (defaults)", "description")
+    widths = [max(len(r[i]) for r in [heads, *rows]) for i in range(3)]
+    lines = [
+        "  ".join(f"{cell:<{w}}" for cell, w in zip(r[:3], widths)) + "  " + r[3]
+        for r in [heads, *rows]
+    ]
+    lines.insert(1, "-" * len(lines[0]))
+    return "\n".join(lines)
+
+
+def _run_learners(args: argparse.Namespace) -> int:
+    from stackdr.estimation import default_outcome_library, default_propensity_library
+
+    print(learner_table())
+    print()
+    print("Without a config file the libraries are:")
+    print("  propensity: " + ", ".join(default_propensity_library()))
+    print("  outcome:    " + ", ".join(default_outcome_library()))
+    print(
+        'In a config file: [propensity.NAME] or [outcome.NAME] with learner = "<name>" and '
+        "any parameter above."
+    )
+    return 0
+
+
+def truth_table(result, truth: float) -> str:
+    """Comparison table of a simulated run with the true value and each estimator's error."""
+    pct = f"{100 * result.level:g}%"
+    lines = [
+        f"{'estimator':<30}{'estimate':>10}{pct + ' low':>10}{pct + ' high':>10}"
+        f"{'true value':>12}{'error':>9}{'covers':>8}"
+    ]
+    for _, row in result.comparison().iterrows():
+        covers = "yes" if row["low"] <= truth <= row["high"] else "no"
+        lines.append(
+            f"{row['estimator']:<30}{row['estimate']:>10.3f}{row['low']:>10.3f}"
+            f"{row['high']:>10.3f}{truth:>12.3f}{row['estimate'] - truth:>+9.3f}{covers:>8}"
+        )
+    return "\n".join(lines)
+
+
+def _run_demo(args: argparse.Namespace) -> int:
+    from stackdr.estimation import BlendEstimator
+    from stackdr.io import atomic_write
+    from stackdr.studies import DESCRIPTION, simulate_demo
+
+    frame, truth = simulate_demo(args.n, args.seed)
+    print(DESCRIPTION)
+    print(f"The data are simulated ({len(frame)} rows), so the true effect is known.\n")
+    estimator = BlendEstimator(
+        "ate",
+        bootstrap=args.bootstrap,
+        n_jobs=args.jobs,
+        seed=args.seed,
+        progress=not args.no_progress,
+    )
+    result = estimator.fit(frame, "programme", "sbp_change")
+    out_dir = Path(args.out)
+    run = {"command": "demo", "simulated": True, "true_value": truth, "description": DESCRIPTION}
+    paths = _write_outputs(result, out_dir, overwrite=True, run=run)
+    data_path = atomic_write(
+        out_dir / "demo_data.csv", frame.to_csv(index=False).encode("utf-8"), overwrite=True
+    )
+    paths["data"] = data_path
+    print(
+        f"\nAverage effect of the programme on the 6-month change in systolic pressure (mmHg), "
+        f"n = {result.data.n}, simulated data\n"
+    )
+    print(truth_table(result, truth))
+    print("\nWeights (target-aimed):")
+    print("  propensity " + "  ".join(f"{k} {v:.3f}" for k, v in result.alpha.items()))
+    print("  outcome    " + "  ".join(f"{k} {v:.3f}" for k, v in result.beta.items()))
+    print(f"Seconds: {result.timings.get('total', float('nan')):.1f}\n")
+    _print_written(paths)
+    print(f"\nCaution: {CAUTION}")
+    return 0
+
+
+# ----------------------------------------------------------------------------- parser
+
+
+def common_options() -> argparse.ArgumentParser:
+    """Parent parser with the options every command accepts (``--debug``)."""
+    parent = Parser(add_help=False)
+    parent.add_argument(
+        "--debug",
+        action="store_true",
+        default=argparse.SUPPRESS,
+        help="show the full traceback when something fails",
+    )
+    return parent
+
+
+def register(subparsers) -> None:
+    """Register the core commands: estimate, report, learners, demo."""
+    common = [common_options()]
+    est = subparsers.add_parser(
+        "estimate",
+        parents=common,
+        help="estimate a target from a data file",
+        description="Cross-fit both learner libraries, choose target-aimed weights, estimate "
+        "with a bootstrap interval, and write results.json, report.html and nuisances.csv "
+        "into the output folder. Flags override values from --config.",
+    )
+    est.add_argument(
+        "data", nargs="?", default=None, metavar="DATA", help="CSV or Parquet file (by extension)"
+    )
+    est.add_argument("--treatment", metavar="COL", help=SETTINGS["treatment"].help)
+    est.add_argument("--outcome", metavar="COL", help=SETTINGS["outcome"].help)
+    est.add_argument("--covariates", nargs="+", metavar="COL", help=SETTINGS["covariates"].help)
+    est.add_argument("--target", choices=TARGET_NAMES, help=SETTINGS["target"].help)
+    est.add_argument(
+        "--config", metavar="FILE.toml", help="TOML file declaring learner libraries and settings"
+    )
+    est.add_argument("--folds", type=int, metavar="S", help="cross-fitting folds (default 5)")
+    est.add_argument(
+        "--repeats",
+        type=int,
+        metavar="R",
+        help="independent fold assignments combined by the median (default 1)",
+    )
+    est.add_argument(
+        "--bootstrap",
+        type=int,
+        metavar="B",
+        help="bootstrap replicates; 0 gives Wald intervals only (default 1000)",
+    )
+    est.add_argument(
+        "--bootstrap-kind",
+        choices=BOOTSTRAP_KINDS,
+        help="reweighting with multinomial or exponential (bayesian) row weights, "
+        "or refit every learner (default multinomial)",
+    )
+    est.add_argument(
+        "--blend", choices=BLENDS, help="how propensity learners are blended (default riesz)"
+    )
+    est.add_argument(
+        "--criterion", choices=CRITERIA, help="pseudo-risk minimised by the weights (default mixed)"
+    )
+    est.add_argument(
+        "--no-tie-break",
+        dest="tie_break",
+        action="store_const",
+        const=False,
+        help="take the pure pseudo-risk minimiser, without moving towards the "
+        "prediction-loss weights within the noise",
+    )
+    est.add_argument(
+        "--tie-break-scale",
+        type=float,
+        metavar="C",
+        help=SETTINGS["tie_break_scale"].help + " (default 0.5)",
+    )
+    est.add_argument(
+        "--clip",
+        type=float,
+        metavar="EPS",
+        help="clip propensities to [EPS, 1 - EPS] (default 0.01)",
+    )
+    est.add_argument("--seed", type=int, metavar="N", help="random seed (default 0)")
+    est.add_argument(
+        "--jobs",
+        type=int,
+        metavar="J",
+        help="parallel workers for learner fits (default 1; -1 all cores)",
+    )
+    est.add_argument(
+        "--no-progress",
+        dest="progress",
+        action="store_const",
+        const=False,
+        help="hide progress bars",
+    )
+    est.add_argument(
+        "--overwrite",
+        action="store_const",
+        const=True,
+        help="replace an existing results.json in the output folder",
+    )
+    est.add_argument("--out", metavar="DIR", help="output folder (created if missing)")
+    add_cluster_options(est, "learner fits and the refit bootstrap")
+    est.set_defaults(run=_run_estimate)
+
+    rep = subparsers.add_parser(
+        "report",
+        parents=common,
+        help="rebuild the HTML report from a results.json",
+        description="Rebuild report.html and figures/ from a saved results.json.",
+    )
+    rep.add_argument("results", metavar="RESULTS", help="path to results.json")
+    rep.add_argument(
+        "--out", metavar="DIR", help="folder for the report (default: the folder of RESULTS)"
+    )
+    rep.set_defaults(run=_run_report)
+
+    lrn = subparsers.add_parser(
+        "learners",
+        parents=common,
+        help="list the learner catalogue for config files",
+        description="List the named learners a config file may use, with their parameters.",
+    )
+    lrn.set_defaults(run=_run_learners)
+
+    demo = subparsers.add_parser(
+        "demo",
+        parents=common,
+        help="run the full pipeline on simulated demo data",
+        description="Simulate the built-in scenario (known true effect), estimate it with the "
+        "default libraries, print the comparison with the truth and write a report folder.",
+    )
+    demo.add_argument(
+        "--out",
+        default="stackdr-demo",
+        metavar="DIR",
+        help="output folder, replaced if present (default stackdr-demo)",
+    )
+    demo.add_argument(
+        "--bootstrap",
+        type=int,
+        default=1000,
+        metavar="B",
+        help="bootstrap replicates (default 1000)",
+    )
+    demo.add_argument(
+        "--jobs",
+        type=int,
+        default=2,
+        metavar="J",
+        help="parallel workers for learner fits (default 2)",
+    )
+    demo.add_argument("--n", type=int, default=2000, help="rows to simulate (default 2000)")
+    demo.add_argument("--seed", type=int, default=2026, help="random seed (default 2026)")
+    demo.add_argument("--no-progress", action="store_true", help="hide progress bars")
+    demo.set_defaults(run=_run_demo)
+
+
+# Command groups: each is a register(subparsers) function. A further group (for example the
+# simulation commands) is added by importing its register function here and listing it below.
+COMMAND_GROUPS = (register, register_study)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The full ``stackdr`` parser with every command group registered."""
+    parser = Parser(
+        prog="stackdr",
+        description="Target-aimed convex stacking of nuisance learners for doubly robust "
+        "estimates.",
+        parents=[common_options()],
+    )
+    parser.add_argument("--version", action="version", version=f"stackdr {__version__}")
+    subparsers = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for group in COMMAND_GROUPS:
+        group(subparsers)
+    return parser
+
+
+def _one_line(exc: BaseException) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
+@contextlib.contextmanager
+def _short_warnings():
+    """Show each warning as one ``stackdr: warning:`` line."""
+
+    def show(message, category, filename, lineno, file=None, line=None):
+        print(f"stackdr: warning: {_one_line(Warning(message))}", file=sys.stderr)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("default")
+        warnings.showwarning = show
+        yield
+
+
+# joblib's process pool starts a separate resource-tracker process that shares our stderr.
+# When a run is interrupted, the pool removes its shared-memory folder itself and the tracker,
+# exiting after us, may warn that the folder it meant to remove is already gone. That warning
+# would land after the tool's one closing line; the filter is inherited by the child processes.
+_CHILD_WARNING_FILTER = "ignore:resource_tracker:UserWarning"
+
+
+def _quiet_child_processes() -> None:
+    current = os.environ.get("PYTHONWARNINGS", "")
+    if _CHILD_WARNING_FILTER not in current.split(","):
+        os.environ["PYTHONWARNINGS"] = ",".join(filter(None, [current, _CHILD_WARNING_FILTER]))
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run the command line; returns the exit code (0 ok, 1 internal error, 2 user mistake)."""
+    _quiet_child_processes()
+    parser = build_parser()
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:
+        return exc.code if isinstance(exc.code, int) else 2
+    debug = getattr(args, "debug", False)
+    try:
+        with _short_warnings():
+            return args.run(args)
+    except KeyboardInterrupt:
+        print("stackdr: interrupted (files are written whole or not at all)", file=sys.stderr)
+        return 130
+    except (StackdrError, OSError) as exc:
+        if debug:
+            traceback.print_exc()
+        print(f"stackdr: error: {_one_line(exc)}", file=sys.stderr)
+        return 2
+    except Exception as exc:  # noqa: BLE001 - anything else is our bug, reported briefly
+        if debug:
+            traceback.print_exc()
+        print(
+            f"stackdr: internal error: {type(exc).__name__}: {_one_line(exc)} "
+            f"(rerun with --debug to see the traceback)",
+            file=sys.stderr,
+        )
+        return 1
+
+

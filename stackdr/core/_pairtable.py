@@ -1,0 +1,335 @@
+"""The pair table Psi and everything computed from row-level DR contributions (DESIGN 2-3).
+
+Psi[k, j] is the cross-fitted DR estimate with propensity learner k and outcome learner j. It is
+computed with matrix products over rows, never as an n x K1 x K2 array.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.special import expit, logit
+
+from stackdr.core._targets import Target
+from stackdr.errors import InputError
+
+BLENDS = ("riesz", "probability", "logit")
+
+
+@dataclass(frozen=True)
+class PairInputs:
+    """Row-level ingredients of one cross-fitting repetition.
+
+    P[c] (n, K1) and B[c] (n, K2) are the weight-side and outcome-side values of component c for
+    every learner; h1[c], h2[c], h3[c], h4 and the denominator d are row functions; pi (n, K1) is
+    the clipped propensity (used by the ``probability`` and ``logit`` blends).
+    """
+
+    P: list
+    B: list
+    h1: list
+    h2: list
+    h3: list
+    h4: np.ndarray
+    d: np.ndarray
+    pi: np.ndarray
+    transforms: list
+    propensity_kind: str
+
+    @property
+    def n(self) -> int:
+        return int(self.d.shape[0])
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return self.P[0].shape[1], self.B[0].shape[1]
+
+
+def pair_inputs(
+    target: Target, crossfit, A: np.ndarray, Y: np.ndarray, repeat: int = 0
+) -> PairInputs:
+    """Assemble the row-level ingredients for repetition ``repeat`` of a cross-fit."""
+    rows = target.row_functions(A, Y)
+    pi = crossfit.propensity[repeat]
+    P, B = [], []
+    with np.errstate(divide="ignore"):
+        for comp in target.components:
+            P.append(np.asarray(comp.weight_transform(pi), dtype=float))
+            B.append(crossfit.outcome[comp.outcome_head][repeat])
+    for c, p in enumerate(P):
+        if not np.all(np.isfinite(p)):
+            raise InputError(
+                f"weight-side values of component {c} are not finite; the propensity hits 0 or 1 "
+                "(raise the clipping bound)"
+            )
+    return PairInputs(
+        P,
+        B,
+        rows["h1"],
+        rows["h2"],
+        rows["h3"],
+        rows["h4"],
+        rows["d"],
+        pi,
+        [c.weight_transform for c in target.components],
+        crossfit.propensity_kind,
+    )
+
+
+def _weights(inp: PairInputs, row_weights: np.ndarray | None) -> np.ndarray:
+    return np.ones(inp.n) if row_weights is None else np.asarray(row_weights, dtype=float)
+
+
+def pair_table(inp: PairInputs, row_weights: np.ndarray | None = None) -> np.ndarray:
+    """Psi (K1 x K2) by matrix products; ``row_weights`` gives a weighted (bootstrap) version."""
+    w = _weights(inp, row_weights)
+    K1, K2 = inp.shape
+    total = np.zeros((K1, K2))
+    for P, B, h1, h2, h3 in zip(inp.P, inp.B, inp.h1, inp.h2, inp.h3):
+        total += (P * (w * h1)[:, None]).T @ B
+        total += ((w * h2) @ B)[None, :]
+        total += ((w * h3) @ P)[:, None]
+    total += w @ inp.h4
+    return total / (w @ inp.d)
+
+
+def blended_weight_side(inp: PairInputs, alphas: np.ndarray, blend: str) -> list:
+    """Weight-side values of each component at propensity weights ``alphas`` (m, K1): list of
+    (n, m) arrays."""
+    alphas = np.atleast_2d(np.asarray(alphas, dtype=float))
+    if blend == "riesz":
+        return [P @ alphas.T for P in inp.P]
+    if blend not in BLENDS:
+        raise InputError(f"unknown blend {blend!r}; choose one of {', '.join(BLENDS)}")
+    return _from_base(inp, _blend_base(inp, blend), alphas, blend)
+
+
+def phi(
+    inp: PairInputs, alphas: np.ndarray, blend: str, row_weights: np.ndarray | None = None
+) -> np.ndarray:
+    """phi(alpha)_j = psi(alpha, e_j) for a batch of propensity weights: (m, K2)."""
+    w = _weights(inp, row_weights)
+    p_alpha = blended_weight_side(inp, alphas, blend)
+    m = p_alpha[0].shape[1]
+    total = np.zeros((m, inp.shape[1]))
+    for p, B, h1, h2, h3 in zip(p_alpha, inp.B, inp.h1, inp.h2, inp.h3):
+        total += (p * (w * h1)[:, None]).T @ B
+        total += ((w * h2) @ B)[None, :]
+        total += ((w * h3) @ p)[:, None]
+    total += w @ inp.h4
+    return total / (w @ inp.d)
+
+
+def _blend_base(inp: PairInputs, blend: str, rows=slice(None)) -> np.ndarray:
+    """The per-row quantity a nonlinear blend mixes linearly: logit(pi) or pi (n x K1)."""
+    if blend not in BLENDS or blend == "riesz":
+        raise InputError(f"a per-row blend base exists for probability and logit, not {blend!r}")
+    if blend == "logit" and inp.propensity_kind != "classifier":
+        raise InputError("the logit blend needs a binary treatment (probabilities)")
+    return logit(inp.pi[rows]) if blend == "logit" else inp.pi[rows]
+
+
+def _from_base(inp: PairInputs, base: np.ndarray, alphas: np.ndarray, blend: str) -> list:
+    """Weight-side values of each component, (n, m) arrays, from the blend base."""
+    mixed = base @ alphas.T
+    pi = expit(mixed) if blend == "logit" else mixed
+    return [np.asarray(t(pi), dtype=float) for t in inp.transforms]
+
+
+def _linear_terms(inp: PairInputs, rows=slice(None)) -> tuple[list, np.ndarray]:
+    """G_c = [h1_c B_c | h3_c] (n x (K2 + 1)) per component, whose products with p_c(alpha) give
+    the alpha-dependent numerator of phi, and the alpha-free part sum_c h2_c B_c + h4 (n x K2)."""
+    G = [
+        np.hstack([(h1[rows])[:, None] * B[rows], (h3[rows])[:, None]])
+        for B, h1, h3 in zip(inp.B, inp.h1, inp.h3)
+    ]
+    free = sum(h2[rows][:, None] * B[rows] for B, h2 in zip(inp.B, inp.h2)) + inp.h4[rows][:, None]
+    return G, free
+
+
+def _lattice_codes(points: np.ndarray, resolution: int) -> np.ndarray:
+    """Integer code of each row of ``points`` as a lattice point with denominator
+    ``resolution`` (the counts in base resolution + 1), or -1 where the row is not exactly one."""
+    counts = np.rint(points * resolution)
+    exact = np.all(counts / resolution == points, axis=1) & np.all(counts >= 0, axis=1)
+    radix = float(resolution + 1) ** np.arange(points.shape[1])
+    return np.where(exact, counts @ radix, -1.0).astype(np.int64)
+
+
+def lattice_phi(
+    inp: PairInputs,
+    blend: str,
+    row_weights: np.ndarray,
+    points: np.ndarray,
+    batch: int = 256,
+) -> np.ndarray:
+    """phi at fixed propensity weights for many sets of row weights at once: (c, m, K2).
+
+    Row weights enter phi linearly, so for every point the weighted sums over rows of all c
+    replicates are one matrix product ``Z' p_c(points)`` with ``Z`` the row terms times the
+    weights (n x c(K2 + 1)); the weight-side values at the points are computed once for all
+    replicates. ``points`` are processed ``batch`` at a time to bound memory.
+
+    Parameters
+    ----------
+    inp : PairInputs
+    blend : {"probability", "logit"}
+    row_weights : array_like, shape (n, c)
+        One column of row weights per replicate.
+    points : array_like, shape (m, K1)
+        Propensity weights (e.g. a simplex lattice).
+    batch : int, default 256
+        Points per matrix product.
+
+    Returns
+    -------
+    numpy.ndarray, shape (c, m, K2)
+        Agrees with :func:`phi` for each column of ``row_weights`` up to round-off.
+    """
+    W = np.asarray(row_weights, dtype=float)
+    points = np.atleast_2d(np.asarray(points, dtype=float))
+    n, c = W.shape
+    K2 = inp.shape[1]
+    base = _blend_base(inp, blend)
+    G, free = _linear_terms(inp)
+    Z = [(W[:, :, None] * g[:, None, :]).reshape(n, -1) for g in G]
+    out = np.empty((c, points.shape[0], K2))
+    for start in range(0, points.shape[0], batch):
+        block = slice(start, start + batch)
+        p_alpha = _from_base(inp, base, points[block], blend)
+        num = sum(z.T @ p for z, p in zip(Z, p_alpha)).reshape(c, K2 + 1, -1)
+        out[:, block, :] = np.transpose(num[:, :K2, :] + num[:, K2:, :], (0, 2, 1))
+    out += (W.T @ free)[:, None, :]
+    return out / (W.T @ inp.d)[:, None, None]
+
+
+class WeightedPhi:
+    """phi(alpha) for one set of row weights, with the per-row work done once.
+
+    :func:`phi` recomputes the blend base (e.g. logit(pi)) and the weighted row products on every
+    call; a replicate's weight search calls phi a few hundred times with the same row weights.
+    This keeps, on the rows with nonzero weight only (a multinomial draw leaves about 37% out),
+    the blend base and per component the weighted terms ``w G_c`` (see :func:`lattice_phi`), so
+    a call costs the blend itself and one small matrix product per component. Values at a
+    fixed lattice computed beforehand (by :func:`lattice_phi`, for many replicates at once) can
+    be attached with ``known``: calls return those rows by exact lookup.
+
+    Parameters
+    ----------
+    inp : PairInputs
+    blend : {"probability", "logit"}
+    row_weights : array_like, shape (n,)
+    known : (int, array_like, array_like), optional
+        ``(resolution, points, values)``: lattice points with that denominator (m, K1) and phi
+        there (m, K2) for these row weights (ignored when ``(resolution + 1) ** K1 >= 2 ** 53``).
+    """
+
+    def __init__(self, inp: PairInputs, blend: str, row_weights, known=None):
+        w = np.asarray(row_weights, dtype=float)
+        rows = np.flatnonzero(w)
+        self.inp, self.blend = inp, blend
+        self.base = _blend_base(inp, blend, rows)
+        G, free = _linear_terms(inp, rows)
+        self.terms = [w[rows][:, None] * g for g in G]
+        self.free = w[rows] @ free
+        self.denominator = w[rows] @ inp.d[rows]
+        self.K2 = inp.shape[1]
+        self.known = None
+        # Lattice codes must stay exact integers in floating point; beyond that every call is
+        # evaluated directly.
+        if known is not None and float(known[0] + 1) ** inp.shape[0] < 2.0**53:
+            resolution, points, values = known
+            codes = _lattice_codes(np.asarray(points, dtype=float), resolution)
+            order = np.argsort(codes)
+            self.known = (resolution, codes[order], np.asarray(values, dtype=float)[order])
+
+    def _direct(self, alphas: np.ndarray) -> np.ndarray:
+        p_alpha = _from_base(self.inp, self.base, alphas, self.blend)
+        total = sum(p.T @ t for p, t in zip(p_alpha, self.terms))
+        return (total[:, : self.K2] + total[:, self.K2 :] + self.free) / self.denominator
+
+    def __call__(self, alphas) -> np.ndarray:
+        """phi at propensity weights ``alphas`` (m, K1): (m, K2)."""
+        alphas = np.atleast_2d(np.asarray(alphas, dtype=float))
+        if self.known is None:
+            return self._direct(alphas)
+        resolution, codes, values = self.known
+        wanted = _lattice_codes(alphas, resolution)
+        at = np.minimum(np.searchsorted(codes, wanted), codes.size - 1)
+        found = codes[at] == wanted
+        out = np.empty((alphas.shape[0], self.K2))
+        out[found] = values[at[found]]
+        if not found.all():
+            out[~found] = self._direct(alphas[~found])
+        return out
+
+
+def row_contributions(inp: PairInputs, alpha, beta, blend: str = "riesz") -> np.ndarray:
+    """H_i at blended nuisances (alpha, beta): length-n array."""
+    p_alpha = blended_weight_side(inp, np.asarray(alpha, dtype=float)[None, :], blend)
+    beta = np.asarray(beta, dtype=float)
+    H = inp.h4.copy()
+    for p, B, h1, h2, h3 in zip(p_alpha, inp.B, inp.h1, inp.h2, inp.h3):
+        p = p[:, 0]
+        b = B @ beta
+        H += b * p * h1 + b * h2 + p * h3
+    return H
+
+
+@dataclass(frozen=True)
+class RowEstimate:
+    """An estimate with its influence-function values and standard error."""
+
+    estimate: float
+    se: float
+    influence: np.ndarray
+
+
+def estimate_from_rows(H: np.ndarray, d: np.ndarray) -> RowEstimate:
+    """psi = sum H / sum d, influence (H - psi d) / mean(d), SE = sqrt(mean(IF^2) / n)."""
+    dbar = d.mean()
+    psi = H.sum() / d.sum()
+    infl = (H - psi * d) / dbar
+    return RowEstimate(float(psi), float(np.sqrt(np.mean(infl**2) / H.shape[0])), infl)
+
+
+def blend_estimate(inp: PairInputs, alpha, beta, blend: str = "riesz") -> RowEstimate:
+    """DR estimate, influence function and SE at blended nuisances."""
+    return estimate_from_rows(row_contributions(inp, alpha, beta, blend), inp.d)
+
+
+def pair_rows(inp: PairInputs, k: int) -> np.ndarray:
+    """Row contributions H_i of every pair (k, j) for one propensity learner k: (n, K2)."""
+    H = np.repeat(inp.h4[:, None], inp.shape[1], axis=1)
+    for P, B, h1, h2, h3 in zip(inp.P, inp.B, inp.h1, inp.h2, inp.h3):
+        p = P[:, k][:, None]
+        H += B * (p * h1[:, None] + h2[:, None]) + p * h3[:, None]
+    return H
+
+
+def pair_standard_errors(inp: PairInputs) -> np.ndarray:
+    """Influence-function SE of every pair (K1 x K2); one pass per propensity learner, so memory
+    stays at n x K2."""
+    K1, K2 = inp.shape
+    n = inp.n
+    dbar = inp.d.mean()
+    se = np.empty((K1, K2))
+    for k in range(K1):
+        H = pair_rows(inp, k)
+        psi = H.sum(axis=0) / inp.d.sum()
+        infl = (H - inp.d[:, None] * psi[None, :]) / dbar
+        se[k] = np.sqrt(np.mean(infl**2, axis=0) / n)
+    return se
+
+
+def contrast_standard_error(inp: PairInputs, first, second, blend: str = "riesz") -> float:
+    """SE of psi(first) - psi(second), each an (alpha, beta) pair, from paired row contributions.
+
+    Used as the noise floor of a sensitivity: differences below it are not distinguishable from
+    sampling noise.
+    """
+    a = blend_estimate(inp, *first, blend)
+    b = blend_estimate(inp, *second, blend)
+    diff = a.influence - b.influence
+    return float(np.sqrt(np.mean(diff**2) / inp.n))

@@ -1,0 +1,353 @@
+"""Cross-fitting: folds, parallel learner fits, out-of-fold predictions for every learner.
+
+Every (repetition, fold, learner) fit is one joblib task, so the same code runs on local
+processes or on a dask.distributed cluster (``joblib.parallel_config(backend="dask")``).
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from joblib import Parallel, delayed
+from sklearn.base import clone
+from sklearn.model_selection import KFold, StratifiedKFold
+
+from stackdr.core import Target
+from stackdr.errors import InputError, LearnerError, PositivityWarning
+from stackdr.estimation._data import PreparedData
+
+
+@dataclass
+class CrossFitResult:
+    """Out-of-fold predictions of every learner.
+
+    Attributes
+    ----------
+    fold_labels : ndarray (R, n)
+        Fold of each row in each of R repetitions.
+    propensity : ndarray (R, n, K1)
+        Out-of-fold E[A | X] per propensity learner, clipped to [clip, 1 - clip] for a binary
+        treatment.
+    propensity_raw : ndarray (R, n, K1)
+        The same before clipping.
+    outcome : dict head -> ndarray (R, n, K2)
+        Out-of-fold outcome regressions per head ("mu1", "mu0", "m").
+    observed : ndarray (R, n, K2)
+        Prediction of each row's own outcome (the head of its observed arm), NaN where no head
+        applies; used for prediction losses and prediction-loss stacking.
+    observed_mask : ndarray (n,)
+        Rows where ``observed`` is defined and the outcome is used.
+    clip_counts : ndarray (R, K1, 2)
+        Rows clipped at the lower and upper bound per learner.
+    failures : dict
+        ``"side:learner"`` -> message for learners dropped after failing.
+    fit_seconds : dict
+        Total fitting seconds per ``"side:learner"``.
+    """
+
+    fold_labels: np.ndarray
+    propensity: np.ndarray
+    propensity_raw: np.ndarray
+    outcome: dict
+    observed: np.ndarray
+    observed_mask: np.ndarray
+    propensity_names: list
+    outcome_names: list
+    clip: float
+    clip_counts: np.ndarray
+    in_sample: bool
+    propensity_kind: str
+    outcome_mode: str
+    failures: dict = field(default_factory=dict)
+    fit_seconds: dict = field(default_factory=dict)
+
+    @property
+    def repeats(self) -> int:
+        return int(self.fold_labels.shape[0])
+
+
+def make_folds(
+    A: np.ndarray,
+    folds: int | np.ndarray = 5,
+    *,
+    seed: int = 0,
+    stratify: bool = True,
+    repeats: int = 1,
+) -> np.ndarray:
+    """Fold labels of shape (repeats, n).
+
+    ``folds`` is the number of folds (stratified on a binary treatment when ``stratify``), 1 for
+    in-sample fitting, or an array of user labels (for example clusters that must stay whole).
+    """
+    n = A.shape[0]
+    if not np.isscalar(folds):
+        labels = np.asarray(folds)
+        if labels.shape != (n,):
+            raise InputError(f"fold labels have shape {labels.shape}, expected ({n},)")
+        if repeats != 1:
+            raise InputError("repeated splitting needs generated folds, not fixed fold labels")
+        _, codes = np.unique(labels, return_inverse=True)
+        if codes.max() < 1:
+            raise InputError("fold labels name a single fold; give at least two")
+        return codes[None, :].astype(np.int64)
+    if isinstance(folds, bool) or int(folds) != folds or folds < 1:
+        raise InputError(f"folds must be a whole number >= 1, got {folds!r}")
+    folds = int(folds)
+    if folds == 1:
+        return np.zeros((1, n), dtype=np.int64)
+    if folds > n:
+        raise InputError(f"{folds} folds for {n} rows")
+    out = np.empty((repeats, n), dtype=np.int64)
+    seeds = np.random.SeedSequence(seed).generate_state(repeats)
+    for r in range(repeats):
+        rs = int(seeds[r])
+        splitter = (
+            StratifiedKFold(folds, shuffle=True, random_state=rs)
+            if stratify
+            else KFold(folds, shuffle=True, random_state=rs)
+        )
+        for s, (_, test) in enumerate(splitter.split(np.zeros(n), A if stratify else None)):
+            out[r, test] = s
+    return out
+
+
+def _predict(est, X, kind):
+    if kind == "classifier":
+        proba = np.asarray(est.predict_proba(X))
+        classes = list(getattr(est, "classes_", [0, 1]))
+        if proba.shape != (X.shape[0], len(classes)) or 1 not in classes:
+            raise ValueError(
+                f"predict_proba returned shape {proba.shape} for {X.shape[0]} rows and classes "
+                f"{np.asarray(classes).tolist()}"
+            )
+        return proba[:, classes.index(1)]
+    return np.asarray(est.predict(X), dtype=float).reshape(-1)
+
+
+def _fit_and_predict(estimator, X_train, y_train, test_inputs, kind):
+    """One task: fit a clone, predict on each test input. Errors are returned, not raised, so
+    the caller can name the learner and apply the library's failure policy."""
+    start = time.perf_counter()
+    try:
+        est = clone(estimator)
+        est.fit(X_train, y_train)
+        preds = [_predict(est, X, kind) for X in test_inputs]
+        for X, p in zip(test_inputs, preds):
+            if p.shape != (X.shape[0],):
+                raise ValueError(f"returned {p.shape[0]} predictions for {X.shape[0]} rows")
+            if not np.all(np.isfinite(p)):
+                raise ValueError(f"returned {int((~np.isfinite(p)).sum())} non-finite predictions")
+            if kind == "classifier" and (p.min() < 0 or p.max() > 1):
+                raise ValueError(
+                    f"returned probabilities outside [0, 1] (range {p.min():.3g} to {p.max():.3g})"
+                )
+        return preds, time.perf_counter() - start, None
+    except Exception as exc:  # noqa: BLE001 - any learner failure is reported by name
+        return None, time.perf_counter() - start, f"{type(exc).__name__}: {exc}"
+
+
+def cross_fit(
+    data: PreparedData,
+    target: Target,
+    propensity_library: dict,
+    outcome_library: dict,
+    *,
+    folds: int | np.ndarray = 5,
+    repeats: int = 1,
+    seed: int = 0,
+    clip: float = 0.01,
+    outcome_mode: str = "separate",
+    on_error: str = "drop",
+    n_jobs: int | None = 1,
+    progress: bool = False,
+) -> CrossFitResult:
+    """Fit every learner on every training split and collect out-of-fold predictions.
+
+    Parameters
+    ----------
+    data : PreparedData
+    target : Target
+    propensity_library, outcome_library : dict name -> estimator
+        Estimators are cloned before every fit, never mutated.
+    folds : int or array
+        Number of folds, 1 for in-sample fits (for parametric learners and reference checks
+        only: flexible learners overfit in sample), or fold labels per row.
+    repeats : int
+        Independent fold assignments (combined downstream by the median).
+    seed : int
+        Seeds the fold assignment.
+    clip : float
+        Propensities are clipped to [clip, 1 - clip] (binary treatment only).
+    outcome_mode : {"separate", "pooled"}
+        Per-arm outcome models, or one model with the treatment as a feature.
+    on_error : {"drop", "raise"}
+        What to do with a learner that fails in any fold.
+    n_jobs : int
+        joblib workers.
+    """
+    if outcome_mode not in ("separate", "pooled"):
+        raise InputError(f"outcome_mode must be 'separate' or 'pooled', got {outcome_mode!r}")
+    if on_error not in ("drop", "raise"):
+        raise InputError(f"on_error must be 'drop' or 'raise', got {on_error!r}")
+    if not 0 <= clip < 0.5:
+        raise InputError(f"clip must be in [0, 0.5), got {clip!r}")
+    X, A, Y = data.X, data.A, data.Y
+    n = data.n
+    binary = bool(np.isin(A, (0.0, 1.0)).all())
+    prop_kind = "classifier" if binary else "regressor"
+    labels = make_folds(A, folds, seed=seed, stratify=binary, repeats=repeats)
+    in_sample = bool(np.isscalar(folds) and folds == 1)
+    needed = target.outcome_needed(A)
+    heads = target.outcome_heads
+    n_folds = int(labels.max()) + 1
+    if binary and not in_sample:
+        for r in range(labels.shape[0]):
+            for s in range(n_folds):
+                train = labels[r] != s
+                for arm in (0.0, 1.0):
+                    if (A[train] == arm).sum() < 2:
+                        raise InputError(
+                            f"fold {s} leaves fewer than 2 rows with {data.treatment_name} = "
+                            f"{int(arm)} for training; use fewer folds"
+                        )
+
+    tasks, keys = [], []
+    for r in range(labels.shape[0]):
+        for s in range(n_folds):
+            test = np.arange(n) if in_sample else np.flatnonzero(labels[r] == s)
+            train = np.arange(n) if in_sample else np.flatnonzero(labels[r] != s)
+            for name, est in propensity_library.items():
+                tasks.append(
+                    delayed(_fit_and_predict)(est, X[train], A[train], [X[test]], prop_kind)
+                )
+                keys.append(("propensity", name, r, test, None))
+            for name, est in outcome_library.items():
+                for fit_rows, inputs, unit_heads in _outcome_units(
+                    X, A, train, test, needed, heads, outcome_mode
+                ):
+                    tasks.append(
+                        delayed(_fit_and_predict)(
+                            est, inputs[0], Y[fit_rows], inputs[1], "regressor"
+                        )
+                    )
+                    keys.append(("outcome", name, r, test, unit_heads))
+
+    results = Parallel(n_jobs=n_jobs, return_as="generator")(tasks)
+    if progress:
+        from tqdm.auto import tqdm
+
+        results = tqdm(results, total=len(tasks), desc="learner fits", unit="fit")
+
+    R = labels.shape[0]
+    prop = {name: np.full((R, n), np.nan) for name in propensity_library}
+    outc = {name: {h: np.full((R, n), np.nan) for h in heads} for name in outcome_library}
+    failures: dict[str, str] = {}
+    seconds: dict[str, float] = {}
+    # results first: the progress bar only closes when its generator is exhausted.
+    for (preds, secs, err), (side, name, r, test, unit_heads) in zip(results, keys):
+        key = f"{side}:{name}"
+        seconds[key] = seconds.get(key, 0.0) + secs
+        if err is not None:
+            failures.setdefault(key, err)
+            continue
+        if side == "propensity":
+            prop[name][r, test] = preds[0]
+        else:
+            for head, p in zip(unit_heads, preds):
+                outc[name][head][r, test] = p
+
+    for key, msg in failures.items():
+        side, name = key.split(":", 1)
+        text = f"{side} learner {name!r} failed and was dropped: {msg}"
+        if on_error == "raise":
+            raise LearnerError(text)
+        warnings.warn(text, stacklevel=2)
+    prop_names = [k for k in propensity_library if f"propensity:{k}" not in failures]
+    out_names = [k for k in outcome_library if f"outcome:{k}" not in failures]
+    for side, names in (("propensity", prop_names), ("outcome", out_names)):
+        if not names:
+            raise LearnerError(f"every {side} learner failed; the {side} library is empty")
+
+    raw = np.stack([prop[k] for k in prop_names], axis=-1)
+    if prop_kind == "classifier":
+        low, high = raw < clip, raw > 1 - clip
+        clip_counts = np.stack([low.sum(axis=1), high.sum(axis=1)], axis=-1)
+        clipped = np.clip(raw, clip, 1 - clip)
+        _warn_clipping(clip_counts, prop_names, n, clip)
+    else:
+        clip_counts = np.zeros((R, len(prop_names), 2), dtype=np.int64)
+        clipped = raw.copy()
+    outcome = {h: np.stack([outc[k][h] for k in out_names], axis=-1) for h in heads}
+    observed, observed_mask = _observed_predictions(outcome, A, needed)
+    return CrossFitResult(
+        fold_labels=labels,
+        propensity=clipped,
+        propensity_raw=raw,
+        outcome=outcome,
+        observed=observed,
+        observed_mask=observed_mask,
+        propensity_names=prop_names,
+        outcome_names=out_names,
+        clip=clip,
+        clip_counts=clip_counts,
+        in_sample=in_sample,
+        propensity_kind=prop_kind,
+        outcome_mode=outcome_mode,
+        failures=failures,
+        fit_seconds=seconds,
+    )
+
+
+def _warn_clipping(clip_counts: np.ndarray, names: list, n: int, clip: float) -> None:
+    """One warning naming every learner whose out-of-fold propensities were clipped, with the
+    share of rows (mean over repetitions), largest first."""
+    shares = clip_counts.sum(axis=-1).mean(axis=0) / n
+    order = [k for k in np.argsort(-shares, kind="stable") if shares[k] > 0]
+    if not order:
+        return
+    listed = ", ".join(f"{names[k]!r} {100 * shares[k]:.1f}% of rows" for k in order)
+    warnings.warn(
+        f"positivity: propensities outside [{clip:g}, {1 - clip:g}] were clipped for "
+        f"{len(order)} of {len(names)} propensity learners ({listed}); overlap between the "
+        "arms is in doubt for those rows and their estimates lean on the clipping bound",
+        PositivityWarning,
+        stacklevel=3,
+    )
+
+
+def _outcome_units(X, A, train, test, needed, heads, mode):
+    """The fits an outcome learner needs on one split: (fit rows, (X_fit, [X_test...]), heads
+    predicted)."""
+    train_needed = train[needed[train]]
+    arm_heads = [h for h in heads if h in ("mu1", "mu0")]
+    if "m" in heads:
+        yield train_needed, (X[train_needed], [X[test]]), ["m"]
+    if not arm_heads:
+        return
+    if mode == "pooled":
+        XA = np.column_stack([X[train_needed], A[train_needed]])
+        tests = [np.column_stack([X[test], np.full(test.size, float(h[-1]))]) for h in arm_heads]
+        yield train_needed, (XA, tests), arm_heads
+        return
+    for h in arm_heads:
+        rows = train_needed[A[train_needed] == float(h[-1])]
+        yield rows, (X[rows], [X[test]]), [h]
+
+
+def _observed_predictions(outcome: dict, A: np.ndarray, needed: np.ndarray):
+    first = next(iter(outcome.values()))
+    observed = np.full_like(first, np.nan)
+    mask = np.zeros(A.shape[0], dtype=bool)
+    if "m" in outcome:
+        observed[:] = outcome["m"]
+        mask[:] = True
+    for arm in (0, 1):
+        head = f"mu{arm}"
+        if head in outcome:
+            rows = A == arm
+            observed[:, rows, :] = outcome[head][:, rows, :]
+            mask |= rows
+    return observed, mask & needed

@@ -1,0 +1,562 @@
+"""Selection-aware inference (DESIGN section 7).
+
+The reweighting bootstrap draws row weights, recomputes every pair table, the prediction losses
+and the prediction-loss stacking weights from the *same* out-of-fold predictions, reruns the
+whole weight search (criterion, solver, tie-break) and recomputes each estimate. The replicate
+pair tables are one matrix product per chunk of replicates: ``W' F`` where F (n x M) holds the
+per-row terms whose weighted sums are every quantity the search needs, and W (n x chunk) the row
+weights. Peak extra memory is about ``8 n (M + chunk)`` bytes; the chunk is sized so that the
+weight block stays under ``memory_budget`` bytes, so no n x B matrix is ever formed.
+
+Approximations, stated: the log-loss stacking weights of a replicate are one projected Newton
+step from the full-sample weights, and the prediction-loss stacking estimate (a probability-scale
+propensity blend, not bilinear in the pair table) is expanded to first order in the propensity
+weights around the full-sample weights; both errors are second order in the replicate's weight
+change. The tie-break tolerance and the credible-direction masks are held at their full-sample
+values. Non-riesz blends need phi(alpha) from the weighted rows in every replicate; this is exact,
+not approximated: phi at the lattice the search scans is computed for the whole chunk at once
+(row weights enter phi linearly, so it is one matrix product per repeat and component,
+:func:`~stackdr.pairtable.lattice_phi`), and every other call goes through
+:class:`~stackdr.pairtable.WeightedPhi`, which keeps the blend base (e.g. logit pi) and the
+weighted row terms of the replicate's nonzero rows. The search itself (lattice, starts, pattern
+search, polish, tie-break) is the full-sample one, unchanged, in every replicate.
+
+The refit bootstrap resamples rows and reruns everything, learner fits included: expensive,
+fully honest about the learners too.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from joblib import Parallel, delayed
+
+from stackdr.core import (
+    WeightedPhi,
+    lattice_phi,
+    logloss_moment_features,
+    logloss_stack_from_moments,
+    nnls_stack_from_moments,
+    pair_rows,
+)
+from stackdr.errors import InputError, StackdrError
+from stackdr.search import (
+    discrete_pairs,
+    lattice_resolution,
+    pure_weights,
+    run_search,
+    simplex_lattice,
+)
+
+KINDS = ("multinomial", "bayesian", "refit")
+METHODS = ("percentile", "basic")
+
+
+@dataclass
+class BootstrapResult:
+    """Replicate distribution and intervals.
+
+    Attributes
+    ----------
+    kind : "multinomial", "bayesian" or "refit"
+    method : "percentile" or "basic"
+    estimates : DataFrame (B x estimators)
+        Every replicate's estimate of every comparison estimator.
+    intervals : dict name -> (low, high)
+    standard_errors : dict name -> bootstrap SE
+    alpha, beta : DataFrame (B x learners)
+        Target-aimed weights chosen in each replicate.
+    selection_frequency : DataFrame
+        Share of replicates in which each learner received weight above 1%, and its mean weight.
+    tie_break_share : float
+        Share of replicates in which the tie-break moved the weights.
+    """
+
+    kind: str
+    method: str
+    level: float
+    estimates: pd.DataFrame
+    intervals: dict
+    standard_errors: dict
+    alpha: pd.DataFrame
+    beta: pd.DataFrame
+    selection_frequency: pd.DataFrame
+    tie_break_share: float
+    chunk_size: int
+    seconds: dict = field(default_factory=dict)
+
+    @property
+    def replicates(self) -> int:
+        return len(self.estimates)
+
+
+def replicate_generators(seed: int, replicates: int) -> list:
+    """One independent generator per replicate, so results do not depend on chunking or
+    worker count."""
+    children = np.random.SeedSequence([seed, 0xB007]).spawn(replicates)
+    return [np.random.default_rng(c) for c in children]
+
+
+def draw_row_weights(rng: np.random.Generator, n: int, kind: str) -> np.ndarray:
+    """Multinomial counts (the ordinary bootstrap) or mean-one exponential weights (Bayesian)."""
+    if kind == "multinomial":
+        return np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
+    w = rng.standard_exponential(n)
+    return w * (n / w.sum())
+
+
+def _interval(est: float, reps: np.ndarray, level: float, method: str) -> tuple[float, float]:
+    reps = reps[np.isfinite(reps)]
+    lo_q, hi_q = np.quantile(reps, [(1 - level) / 2, (1 + level) / 2])
+    if method == "percentile":
+        return float(lo_q), float(hi_q)
+    return float(2 * est - hi_q), float(2 * est - lo_q)
+
+
+# ----------------------------------------------------------------------------- features
+
+
+@dataclass(frozen=True)
+class _Layout:
+    K1: int
+    K2: int
+    classifier: bool
+
+    def slices(self) -> dict:
+        K1, K2 = self.K1, self.K2
+        sizes = [
+            ("pairs", K1 * K2),
+            ("d", 1),
+            ("gram", K2 * K2),
+            ("cross", K2),
+            ("out_loss", K2),
+            ("prop_loss", K1),
+            ("grad", K1),
+            ("hess", K1 * K1),
+            ("pls_b", K2),
+            ("pls_ab", K1 * K2),
+            ("pls_1", 1),
+            ("pls_a", K1),
+        ]
+        out, start = {}, 0
+        for name, size in sizes:
+            out[name] = slice(start, start + size)
+            start += size
+        out["width"] = start
+        return out
+
+
+def replicate_features(inp, cf, prepared, repeat: int, stack_alpha: np.ndarray) -> np.ndarray:
+    """Per-row terms (n x M) whose row-weighted sums give a replicate's pair table numerators,
+    denominator, NNLS moments, prediction losses, log-loss Newton moments, and the expansion
+    terms of the prediction-loss stacking estimate (see :func:`_pls_terms`)."""
+    K1, K2 = inp.shape
+    n = inp.n
+    layout = _Layout(K1, K2, cf.propensity_kind == "classifier")
+    sl = layout.slices()
+    F = np.zeros((n, sl["width"]))
+    for k in range(K1):
+        F[:, sl["pairs"].start + k * K2 : sl["pairs"].start + (k + 1) * K2] = pair_rows(inp, k)
+    F[:, sl["d"]] = inp.d[:, None]
+    rows = cf.observed_mask
+    obs = np.where(rows[:, None], np.nan_to_num(cf.observed[repeat]), 0.0)
+    y = np.where(rows, prepared.Y, 0.0)
+    F[:, sl["gram"]] = (obs[:, :, None] * obs[:, None, :]).reshape(n, -1)
+    F[:, sl["cross"]] = obs * y[:, None]
+    F[:, sl["out_loss"]] = np.where(rows[:, None], (obs - y[:, None]) ** 2, 0.0)
+    probs = cf.propensity[repeat]
+    A = prepared.A
+    if layout.classifier:
+        q = np.clip(probs, 1e-6, 1 - 1e-6)
+        F[:, sl["prop_loss"]] = -(A[:, None] * np.log(q) + (1 - A[:, None]) * np.log(1 - q))
+        grad, hess = logloss_moment_features(probs, A, stack_alpha)
+        F[:, sl["grad"]] = grad
+        F[:, sl["hess"]] = hess.reshape(n, -1)
+    else:
+        F[:, sl["prop_loss"]] = (probs - A[:, None]) ** 2
+        F[:, sl["grad"]] = probs * A[:, None]
+        F[:, sl["hess"]] = (probs[:, :, None] * probs[:, None, :]).reshape(n, -1)
+    for name, values in _pls_terms(inp, stack_alpha).items():
+        F[:, sl[name]] = values.reshape(n, -1)
+    return F
+
+
+def _pls_terms(inp, alpha0: np.ndarray, step: float = 1e-6) -> dict:
+    """Row terms of the prediction-loss stacking estimate, whose propensity side is the
+    probability-scale blend pi @ alpha, expanded to first order in alpha around the full-sample
+    weights alpha0: p_c(alpha) = p0_c + G_c (alpha - alpha0) with G_c = g_c'(pi @ alpha0) pi.
+    The estimate is bilinear in (1, alpha - alpha0) and beta, so a replicate needs only weighted
+    sums; the error is second order in the replicate's weight change (O(1/n)), far below the
+    sampling SD. g_c' is a central difference, so user-defined transforms work too."""
+    base = np.clip(inp.pi @ alpha0, 1e-12, 1 - 1e-12)
+    n, K2 = inp.B[0].shape
+    K1 = inp.pi.shape[1]
+    terms = {
+        "pls_b": np.zeros((n, K2)),
+        "pls_ab": np.zeros((n, K1, K2)),
+        "pls_1": inp.h4.copy(),
+        "pls_a": np.zeros((n, K1)),
+    }
+    for g, B, h1, h2, h3 in zip(inp.transforms, inp.B, inp.h1, inp.h2, inp.h3):
+        p0 = np.asarray(g(base), dtype=float)
+        slope = (np.asarray(g(base + step)) - np.asarray(g(base - step))) / (2 * step)
+        G = slope[:, None] * inp.pi
+        terms["pls_b"] += (p0 * h1 + h2)[:, None] * B
+        terms["pls_ab"] += (h1[:, None] * G)[:, :, None] * B[:, None, :]
+        terms["pls_1"] += p0 * h3
+        terms["pls_a"] += h3[:, None] * G
+    return terms
+
+
+def _pls_estimates(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, betas, alpha0):
+    """Replicate prediction-loss stacking estimates from weighted sums ``s`` (chunk x M)."""
+    da = alphas - alpha0
+    ab = s[:, sl["pls_ab"]].reshape(-1, K1, K2)
+    num = (
+        np.einsum("ck,ckj,cj->c", da, ab, betas)
+        + np.einsum("cj,cj->c", s[:, sl["pls_b"]], betas)
+        + s[:, sl["pls_1"]][:, 0]
+        + np.einsum("ck,ck->c", s[:, sl["pls_a"]], da)
+    )
+    return num / s[:, sl["d"]][:, 0]
+
+
+# ----------------------------------------------------------------------------- one chunk
+
+
+def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
+    """Run replicates ``indices``: row weights, batched moments, searches, estimates."""
+    settings, masks = an.settings, an.masks
+    K1, K2 = an.Psi.shape
+    layout = _Layout(K1, K2, cf_meta["classifier"])
+    sl = layout.slices()
+    n = inputs[0].n
+    W = np.empty((n, len(indices)))
+    for col, b in enumerate(indices):
+        W[:, col] = draw_row_weights(generators[b], n, kind)
+    t0 = time.perf_counter()
+    sums = [W.T @ F for F in features]  # one matrix product per repeat
+    tables = np.stack([(s[:, sl["pairs"]] / s[:, sl["d"]]).reshape(-1, K1, K2) for s in sums])
+    Psi_b = np.median(tables, axis=0)
+    s0 = np.sum(sums, axis=0) if len(sums) > 1 else sums[0]
+    gram = s0[:, sl["gram"]].reshape(-1, K2, K2)
+    beta_s = nnls_stack_from_moments(gram, s0[:, sl["cross"]])
+    if cf_meta["classifier"]:
+        alpha_s = logloss_stack_from_moments(
+            s0[:, sl["grad"]], s0[:, sl["hess"]].reshape(-1, K1, K1), an.stack_alpha
+        )
+    else:
+        alpha_s = nnls_stack_from_moments(s0[:, sl["hess"]].reshape(-1, K1, K1), s0[:, sl["grad"]])
+    moments_s = time.perf_counter() - t0
+
+    names = cf_meta["estimators"]
+    out = {name: np.empty(len(indices)) for name in names}
+    alphas = np.empty((len(indices), K1))
+    betas = np.empty((len(indices), K2))
+    moved = np.zeros(len(indices), dtype=bool)
+    t1 = time.perf_counter()
+    lattice = _replicate_lattice(inputs, settings, W, K1, K2)
+    for col in range(len(indices)):
+        Psi = Psi_b[col]
+        phi_fn = None
+        if settings.blend != "riesz":
+            phi_fn = _weighted_phi(inputs, settings.blend, W[:, col], lattice, col)
+        search = run_search(
+            Psi,
+            settings,
+            phi=phi_fn,
+            anchors=(alpha_s[col], beta_s[col]),
+            tolerance=taus,
+            masks=masks,
+        )
+        alphas[col], betas[col] = search.alpha, search.beta
+        moved[col] = any(
+            bool(r.details.get("moved", False))
+            for k, r in search.records.items()
+            if "tie_break" in k
+        )
+        sel = {"target-aimed stacking": (search.alpha, search.beta)}
+        if settings.tie_break:
+            sel["target-aimed, no tie-break"] = pure_weights(search, K1)
+        loss_p = s0[col, sl["prop_loss"]]
+        loss_o = s0[col, sl["out_loss"]]
+        e1, e2 = np.eye(K1), np.eye(K2)
+        sel["best-predicting pair"] = (e1[int(np.argmin(loss_p))], e2[int(np.argmin(loss_o))])
+        for name, (k, j) in discrete_pairs(Psi, masks).items():
+            sel[name] = (e1[k], e2[j])
+        for name, (a, b) in sel.items():
+            if settings.blend == "riesz":
+                out[name][col] = a @ Psi @ b
+            else:
+                out[name][col] = phi_fn(np.asarray(a)[None])[0] @ b
+    search_s = time.perf_counter() - t1
+    out["prediction-loss stacking"] = np.median(
+        np.stack([_pls_estimates(sm, sl, K1, K2, alpha_s, beta_s, an.stack_alpha) for sm in sums]),
+        axis=0,
+    )
+    return (
+        indices,
+        out,
+        alphas,
+        betas,
+        moved,
+        {
+            "moments": moments_s,
+            "search": search_s,
+        },
+    )
+
+
+def _replicate_lattice(inputs, settings, W, K1: int, K2: int):
+    """For a nonlinear blend: the alpha lattice the replicate searches will scan (resolution,
+    points) and, per repeat, phi there for every replicate of the chunk (c, m, K2), from one
+    matrix product per component (:func:`lattice_phi`). None for the riesz blend."""
+    if settings.blend == "riesz":
+        return None
+    dims = [K1] if settings.criterion == "mixed" else [K1, K2]
+    r = lattice_resolution(dims, settings.resolution)
+    points = simplex_lattice(K1, r)
+    return r, points, [lattice_phi(inp, settings.blend, W, points) for inp in inputs]
+
+
+def _weighted_phi(inputs, blend, w, lattice, col: int):
+    """phi of replicate ``col`` (median over repeats), with the per-row work done once and the
+    lattice values looked up."""
+    r, points, values = lattice
+    evaluators = [WeightedPhi(inp, blend, w, (r, points, v[col])) for inp, v in zip(inputs, values)]
+    if len(evaluators) == 1:
+        return evaluators[0]
+
+    def phi_fn(alphas):
+        return np.median(np.stack([ev(alphas) for ev in evaluators]), axis=0)
+
+    return phi_fn
+
+
+# ----------------------------------------------------------------------------- driver
+
+
+def reweighting_bootstrap(
+    estimator,
+    result,
+    *,
+    replicates: int | None = None,
+    kind: str | None = None,
+    method: str | None = None,
+    chunk_size: int | None = None,
+    memory_budget: float = 256e6,
+    n_jobs: int | None = None,
+) -> BootstrapResult:
+    """Reweighting bootstrap of every comparison estimator, rerunning the weight search.
+
+    Parameters
+    ----------
+    estimator : BlendEstimator
+        Supplies the settings (and defaults for every argument below).
+    result : BlendResult
+        The full-sample fit whose out-of-fold predictions are reused.
+    replicates : int
+        B (default ``estimator.bootstrap``).
+    kind : {"multinomial", "bayesian"}
+        Multinomial counts or exponential (Bayesian bootstrap) row weights.
+    method : {"percentile", "basic"}
+    chunk_size : int, optional
+        Replicates per matrix product; default sized by ``memory_budget`` (bytes of the n x chunk
+        weight block). Results do not depend on it.
+    n_jobs : int, optional
+        Workers over chunks. Results do not depend on it.
+    """
+    B = int(estimator.bootstrap if replicates is None else replicates)
+    kind = kind or getattr(estimator, "bootstrap_kind", "multinomial")
+    method = method or getattr(estimator, "interval", "percentile")
+    if kind not in ("multinomial", "bayesian"):
+        raise InputError(
+            f"reweighting bootstrap kind must be multinomial or bayesian, got {kind!r}"
+        )
+    if method not in METHODS:
+        raise InputError(f"interval method must be one of {METHODS}, got {method!r}")
+    if B < 1:
+        raise InputError(f"bootstrap replicates must be >= 1, got {B}")
+    an = result.analysis
+    cf = result.crossfit
+    prepared = result.data
+    t0 = time.perf_counter()
+    features = [
+        replicate_features(inp, cf, prepared, r, an.stack_alpha) for r, inp in enumerate(an.inputs)
+    ]
+    feature_s = time.perf_counter() - t0
+    n = prepared.n
+    if chunk_size is None:
+        chunk_size = int(max(1, min(B, 256, memory_budget // (8 * n))))
+    taus = _fixed_tolerances(result) if an.settings.tie_break else None
+    names = [row.name for row in result.estimators]
+    meta = {"classifier": cf.propensity_kind == "classifier", "estimators": names}
+    gens = replicate_generators(int(estimator.seed), B)
+    chunks = [list(range(s, min(B, s + chunk_size))) for s in range(0, B, chunk_size)]
+    jobs = estimator.n_jobs if n_jobs is None else n_jobs
+    run = Parallel(n_jobs=jobs, return_as="generator")(
+        delayed(_chunk)(an, features, an.inputs, meta, gens, idx, kind, taus) for idx in chunks
+    )
+    if getattr(estimator, "progress", False):
+        from tqdm.auto import tqdm
+
+        run = tqdm(run, total=len(chunks), desc="bootstrap", unit="chunk")
+    est = {name: np.empty(B) for name in names}
+    alphas = np.empty((B, an.Psi.shape[0]))
+    betas = np.empty((B, an.Psi.shape[1]))
+    moved = np.zeros(B, dtype=bool)
+    stage = {"features": feature_s, "moments": 0.0, "search": 0.0}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for idx, out, a, b, mv, secs in run:
+            for name in names:
+                est[name][idx] = out[name]
+            alphas[idx], betas[idx], moved[idx] = a, b, mv
+            for key, value in secs.items():
+                stage[key] += value
+    stage["total"] = time.perf_counter() - t0
+    return summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk_size, stage)
+
+
+def _fixed_tolerances(result) -> dict:
+    recs = result.search.records
+    out = {}
+    for side, key in (("propensity", "alpha_tie_break"), ("outcome", "beta_tie_break")):
+        rec = recs.get(key) or recs.get("joint_tie_break")
+        out[side] = float(rec.details.get("tolerance", 0.0)) if rec is not None else 0.0
+    return out
+
+
+def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk, stage):
+    """Intervals, SEs and selection stability from replicate estimates and weights."""
+    level = result.level
+    names = list(est)
+    frame = pd.DataFrame(est)
+    point = {row.name: row.estimate for row in result.estimators}
+    intervals = {nm: _interval(point[nm], frame[nm].to_numpy(), level, method) for nm in names}
+    ses = {
+        nm: float(np.nanstd(frame[nm].to_numpy(), ddof=1)) if len(frame) > 1 else np.nan
+        for nm in names
+    }
+    cf = result.crossfit
+    a = pd.DataFrame(alphas, columns=cf.propensity_names)
+    b = pd.DataFrame(betas, columns=cf.outcome_names)
+    freq = pd.concat(
+        [
+            pd.DataFrame(
+                {
+                    "side": "propensity",
+                    "learner": a.columns,
+                    "share_weighted": (a.dropna() > 0.01).mean().to_numpy(),
+                    "mean_weight": a.mean().to_numpy(),
+                }
+            ),
+            pd.DataFrame(
+                {
+                    "side": "outcome",
+                    "learner": b.columns,
+                    "share_weighted": (b.dropna() > 0.01).mean().to_numpy(),
+                    "mean_weight": b.mean().to_numpy(),
+                }
+            ),
+        ],
+        ignore_index=True,
+    )
+    return BootstrapResult(
+        kind,
+        method,
+        level,
+        frame,
+        intervals,
+        ses,
+        a,
+        b,
+        freq,
+        float(moved.mean()) if moved.size else 0.0,
+        chunk,
+        stage,
+    )
+
+
+def _refit_one(estimator, prepared, target, rows):
+    """One refit replicate: (estimates, alpha, beta, tie-break moved), or the reason it could
+    not be fitted. A resample can leave an arm too small for the folds or make every learner of
+    a side fail; that replicate is left out rather than ending the run."""
+    data = prepared.take(rows)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            cf = estimator.cross_fit(data, target, n_jobs=1)
+            res = estimator.analyse(data, target, cf, bootstrap=False)
+    except StackdrError as exc:
+        return f"{type(exc).__name__}: {exc}"
+    return (
+        {row.name: row.estimate for row in res.estimators},
+        res.alpha,
+        res.beta,
+        res.tie_break_active,
+    )
+
+
+def refit_bootstrap(
+    estimator,
+    result,
+    *,
+    replicates: int | None = None,
+    method: str | None = None,
+    n_jobs: int | None = None,
+) -> BootstrapResult:
+    """Resample rows and redo cross-fitting, learner fits and the weight search in each
+    replicate (parallel through joblib). Fold labels given by the user cannot be resampled; a
+    row drawn twice may sit in training and test folds at once, as is usual for this bootstrap."""
+    if not np.isscalar(estimator.folds):
+        raise InputError("the refit bootstrap needs generated folds, not fixed fold labels")
+    B = int(estimator.bootstrap if replicates is None else replicates)
+    method = method or getattr(estimator, "interval", "percentile")
+    prepared = result.data
+    gens = replicate_generators(int(estimator.seed), B)
+    n = prepared.n
+    t0 = time.perf_counter()
+    tasks = (
+        delayed(_refit_one)(estimator, prepared, result.target, g.integers(0, n, n)) for g in gens
+    )
+    run = Parallel(n_jobs=estimator.n_jobs if n_jobs is None else n_jobs, return_as="generator")(
+        tasks
+    )
+    if getattr(estimator, "progress", False):
+        from tqdm.auto import tqdm
+
+        run = tqdm(run, total=B, desc="refit bootstrap", unit="replicate")
+    names = [row.name for row in result.estimators]
+    est = {name: np.full(B, np.nan) for name in names}
+    alphas = np.zeros((B, len(result.alpha)))
+    betas = np.zeros((B, len(result.beta)))
+    moved = np.zeros(B, dtype=bool)
+    failed = []
+    for b, outcome in enumerate(run):
+        if isinstance(outcome, str):
+            failed.append(outcome)
+            alphas[b], betas[b] = np.nan, np.nan
+            continue
+        vals, a, bb, mv = outcome
+        for name in names:
+            est[name][b] = vals.get(name, np.nan)
+        # A learner that failed in a replicate was dropped there: its weight is zero.
+        alphas[b] = a.reindex(result.alpha.index, fill_value=0.0).to_numpy()
+        betas[b] = bb.reindex(result.beta.index, fill_value=0.0).to_numpy()
+        moved[b] = mv
+    if len(failed) == B:
+        raise InputError(f"no refit bootstrap replicate could be fitted; the first: {failed[0]}")
+    if failed:
+        warnings.warn(
+            f"{len(failed)} of {B} refit bootstrap replicates could not be fitted and were left "
+            f"out of the interval (the first: {failed[0]})",
+            RuntimeWarning,
+            stacklevel=2,
+        )
+    stage = {"total": time.perf_counter() - t0}
+    return summarise_replicates(result, est, alphas, betas, moved, "refit", method, 1, stage)

@@ -1,0 +1,48 @@
+"""Input and output: saved results (``results.json``), TOML configuration, exported nuisances
+and blended scikit-learn models."""
+
+from stackdr.io._config import (
+    ESTIMATOR_SETTINGS,
+    SETTINGS,
+    check_setting,
+    estimator_kwargs,
+    load_config,
+    resolve_settings,
+)
+from stackdr.io._export import (
+    BlendedClassifier,
+    BlendedRegressor,
+    blended_models,
+    blended_nuisances,
+)
+from stackdr.io._results_json import (
+    SCHEMA,
+    atomic_write,
+    effective_sample_size,
+    plain,
+    read_results_json,
+    result_to_dict,
+    validate_results,
+    write_results_json,
+)
+
+__all__ = [
+    "ESTIMATOR_SETTINGS",
+    "SCHEMA",
+    "SETTINGS",
+    "BlendedClassifier",
+    "BlendedRegressor",
+    "atomic_write",
+    "blended_models",
+    "blended_nuisances",
+    "check_setting",
+    "effective_sample_size",
+    "estimator_kwargs",
+    "load_config",
+    "plain",
+    "read_results_json",
+    "resolve_settings",
+    "result_to_dict",
+    "validate_results",
+    "write_results_json",
+]

@@ -1,0 +1,319 @@
+"""Readable summaries of a Monte Carlo study: aligned text, markdown and a self-contained HTML
+page with embedded figures.
+
+Every number comes from :func:`stackdr.study.summarise_study` (performance per design, sample
+size and estimator, each with its Monte Carlo standard error) and :func:`stackdr.study.read_results`
+(replicate-level errors and chosen weights).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import math
+import sqlite3
+from contextlib import closing
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from matplotlib.figure import Figure
+
+from stackdr.reporting._figures import (
+    MAIN_COLOUR,
+    OTHER_COLOUR,
+    STACK_COLOUR,
+    figure_style,
+    label,
+    render_png,
+)
+from stackdr.studies import read_results, summarise_study
+
+# (summary column, its MC SE column, header) in display order.
+MEASURES = (
+    ("bias", "bias_mcse", "bias"),
+    ("sd", "sd_mcse", "SD"),
+    ("rmse", "rmse_mcse", "RMSE"),
+    ("mae", "mae_mcse", "MAE (median)"),
+    ("coverage", "coverage_mcse", "coverage"),
+    ("width", "width_mcse", "mean width"),
+)
+
+
+_NUMERIC_CELL = r"[-+0-9.eE%() ]*|nan|inf"
+
+
+def _number(value: float, digits: int = 4) -> str:
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    return f"{value:.{digits}g}"
+
+
+def with_mcse(value: float, mcse: float, digits: int = 4) -> str:
+    """``value (mcse)`` with ``digits`` significant digits, or ``-`` when missing."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    if mcse is None or (isinstance(mcse, float) and math.isnan(mcse)):
+        return _number(value, digits)
+    return f"{_number(value, digits)} ({_number(mcse, 2)})"
+
+
+def display_table(summary: pd.DataFrame) -> pd.DataFrame:
+    """The summary as strings: one row per design, n and estimator; each measure printed as
+    ``value (Monte Carlo SE)``."""
+    rows = []
+    for _, r in summary.iterrows():
+        row = {
+            "design": r["design"],
+            "n": str(int(r["n"])),
+            "estimator": r["estimator"],
+            "reps": str(int(r["reps"])),
+        }
+        for value, mcse, header in MEASURES:
+            row[header] = with_mcse(r[value], r[mcse])
+        rows.append(row)
+    return pd.DataFrame(
+        rows, columns=["design", "n", "estimator", "reps"] + [m[2] for m in MEASURES]
+    )
+
+
+def text_table(frame: pd.DataFrame) -> str:
+    """Aligned plain-text rendering of a table of strings (first columns left-aligned)."""
+    cells = frame.astype(str)
+    widths = {c: max(len(str(c)), *(len(v) for v in cells[c])) for c in cells.columns}
+    # Words read best left-aligned, numbers (with their MC SE in parentheses) right-aligned.
+    left = {c for c in cells.columns if not cells[c].str.fullmatch(_NUMERIC_CELL).all()}
+
+    def fmt(c, v):
+        return v.ljust(widths[c]) if c in left else v.rjust(widths[c])
+
+    lines = ["  ".join(fmt(c, str(c)) for c in cells.columns)]
+    lines += ["  ".join(fmt(c, v) for c, v in zip(cells.columns, row)) for row in cells.values]
+    return "\n".join(lines)
+
+
+def markdown_table(frame: pd.DataFrame) -> str:
+    """GitHub-flavoured markdown rendering of a table (values shown with ``str``)."""
+    cells = frame.astype(str)
+    head = "| " + " | ".join(map(str, cells.columns)) + " |"
+    rule = "|" + "|".join("---" for _ in cells.columns) + "|"
+    body = ["| " + " | ".join(v.replace("|", "\\|") for v in row) + " |" for row in cells.values]
+    return "\n".join([head, rule, *body])
+
+
+def summary_text(summary: pd.DataFrame) -> str:
+    """Per design and sample size, an aligned table of every estimator's performance."""
+    if summary.empty:
+        return "no finished replicates"
+    blocks = []
+    table = display_table(summary)
+    for (design, n), group in table.groupby(["design", "n"], sort=False):
+        target = summary.loc[summary["design"] == design, "target"].iloc[0]
+        truth = summary.loc[(summary["design"] == design) & (summary["n"] == int(n)), "truth"].iloc[
+            0
+        ]
+        blocks.append(
+            f"{design} (target {target}, truth {_number(truth, 6)}), n = {n}\n"
+            + text_table(group.drop(columns=["design", "n"]))
+        )
+    return (
+        "\n\n".join(blocks)
+        + "\n\nValues are Monte Carlo estimates with their Monte Carlo SE in parentheses."
+    )
+
+
+# ------------------------------------------------------------------------------------ ordering
+
+# The comparison table's order; other estimators (user replicate functions) follow by name.
+ESTIMATOR_ORDER = (
+    "target-aimed stacking",
+    "target-aimed, no tie-break",
+    "prediction-loss stacking",
+    "best-predicting pair",
+    "mixed-minimax pair",
+    "minimax pair",
+    "oracle pair",
+)
+
+
+def _estimator_rank(name: str) -> tuple[int, str]:
+    return (ESTIMATOR_ORDER.index(name) if name in ESTIMATOR_ORDER else len(ESTIMATOR_ORDER), name)
+
+
+def ordered(summary: pd.DataFrame) -> pd.DataFrame:
+    """Summary rows sorted by design, n and the comparison table's estimator order."""
+    if summary.empty:
+        return summary
+    rank = summary["estimator"].map(_estimator_rank)
+    return (
+        summary.assign(_rank=rank)
+        .sort_values(["design", "n", "_rank"], kind="stable")
+        .drop(columns="_rank")
+        .reset_index(drop=True)
+    )
+
+
+# ---------------------------------------------------------------------------------------- HTML
+
+_CSS = """
+body { font-family: system-ui, sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }
+table { border-collapse: collapse; font-size: 0.85em; margin: 0.6em 0 1.2em; }
+th, td { border: 1px solid #ccc; padding: 0.25em 0.5em; text-align: right; }
+th:first-child, td:first-child { text-align: left; }
+figure { margin: 1em 0; } figcaption { font-size: 0.85em; color: #555; }
+pre { background: #f6f6f6; padding: 0.6em; font-size: 0.8em; overflow-x: auto; }
+.note { font-size: 0.9em; color: #444; }
+"""
+
+
+def read_study_record(path: str | Path) -> dict:
+    """The ``study`` table of a study file (seed, designs, settings, format, creation time),
+    values decoded from JSON."""
+    uri = Path(path).resolve().as_uri() + "?mode=ro"
+    with closing(sqlite3.connect(uri, uri=True)) as conn:
+        return {
+            key: json.loads(value) for key, value in conn.execute("SELECT key, value FROM study")
+        }
+
+
+def _level(record: dict) -> float:
+    settings = record.get("settings", {})
+    estimator = settings.get("estimator", settings) if isinstance(settings, dict) else {}
+    level = estimator.get("level", 0.95) if isinstance(estimator, dict) else 0.95
+    return float(level)
+
+
+def _png_tag(fig, caption: str) -> str:
+    data = base64.b64encode(render_png(fig)).decode("ascii")
+    return (
+        f'<figure><img src="data:image/png;base64,{data}" alt="{html.escape(caption)}">'
+        f"<figcaption>{html.escape(caption)}</figcaption></figure>"
+    )
+
+
+def error_figure(results: pd.DataFrame, names: list[str]):
+    """Box plots of estimate - truth per estimator (one design and n)."""
+    error = results["estimate"] - results["truth"]
+    errors = [error[results["estimator"] == name].dropna().to_numpy() for name in names]
+    fig = Figure(figsize=(7.0, 0.45 * len(names) + 1.2))
+    ax = fig.add_subplot()
+    positions = list(range(len(names), 0, -1))
+    parts = ax.boxplot(
+        errors, positions=positions, orientation="horizontal", widths=0.6, patch_artist=True
+    )
+    colours = {ESTIMATOR_ORDER[0]: MAIN_COLOUR, ESTIMATOR_ORDER[2]: STACK_COLOUR}
+    for box, name in zip(parts["boxes"], names):
+        box.set_facecolor(colours.get(name, OTHER_COLOUR))
+        box.set_alpha(0.55)
+    ax.axvline(0.0, color="black", lw=0.8)
+    ax.set_yticks(positions, [label(n) for n in names])
+    ax.set_xlabel("estimate - truth")
+    return fig
+
+
+def coverage_figure(summary: pd.DataFrame, level: float):
+    """Coverage per estimator with +-1.96 Monte Carlo SE bars and the nominal level."""
+    rows = summary[np.isfinite(summary["coverage"].to_numpy(dtype=float))]
+    fig = Figure(figsize=(7.0, 0.45 * max(len(rows), 1) + 1.2))
+    ax = fig.add_subplot()
+    positions = np.arange(len(rows), 0, -1)
+    ax.errorbar(
+        rows["coverage"],
+        positions,
+        xerr=1.96 * rows["coverage_mcse"].fillna(0.0),
+        fmt="o",
+        color=MAIN_COLOUR,
+        capsize=3,
+    )
+    ax.axvline(level, color="black", ls="--", lw=0.9, label=f"nominal {level:g}")
+    ax.set_yticks(positions, [label(n) for n in rows["estimator"]])
+    ax.set_xlabel("coverage (bars: +-1.96 Monte Carlo SE)")
+    ax.set_xlim(min(0.5, float(rows["coverage"].min()) - 0.05) if len(rows) else 0.5, 1.01)
+    ax.legend(loc="lower left")
+    return fig
+
+
+def weight_figure(results: pd.DataFrame):
+    """Distribution over replicates of target-aimed stacking's weight on each learner, or None
+    when no weights were stored."""
+    rows = results[results["estimator"] == ESTIMATOR_ORDER[0]]
+    stored = [w for w in rows["weights"] if isinstance(w, dict)]
+    sides = [
+        s for s in ("propensity", "outcome") if any(isinstance(w.get(s), dict) for w in stored)
+    ]
+    if not sides:
+        return None
+    fig = Figure(figsize=(9.0, 3.2))
+    for i, side in enumerate(sides):
+        frame = pd.DataFrame([w.get(side, {}) for w in stored]).fillna(0.0)
+        ax = fig.add_subplot(1, len(sides), i + 1)
+        ax.boxplot(
+            [frame[c].to_numpy() for c in frame.columns],
+            widths=0.6,
+            patch_artist=True,
+            boxprops={"facecolor": MAIN_COLOUR, "alpha": 0.45},
+        )
+        ax.set_xticks(range(1, frame.shape[1] + 1), [label(c, 16) for c in frame.columns])
+        ax.tick_params(axis="x", labelrotation=30)
+        ax.set_ylim(-0.03, 1.03)
+        ax.set_title(f"{side} weights")
+    fig.tight_layout()
+    return fig
+
+
+def html_report(path: str | Path, summary: pd.DataFrame | None = None) -> str:
+    """A self-contained HTML page for a study file: settings, the summary table with Monte Carlo
+    SEs, and per design and n the error distributions, coverage with Monte Carlo error bars and
+    the distribution of target-aimed stacking's chosen weights. Figures are embedded PNGs; all
+    text is HTML-escaped.
+
+    Parameters
+    ----------
+    path : str or pathlib.Path
+        Study file.
+    summary : DataFrame, optional
+        :func:`stackdr.study.summarise_study` output (computed when not given).
+
+    Returns
+    -------
+    str
+    """
+    record = read_study_record(path)
+    summary = ordered(summarise_study(path) if summary is None else summary)
+    results = read_results(path)
+    level = _level(record)
+    esc = html.escape
+    parts = [
+        "<!DOCTYPE html><html><head><meta charset='utf-8'>",
+        f"<title>stackdr study: {esc(str(path))}</title><style>{_CSS}</style></head><body>",
+        f"<h1>Monte Carlo study {esc(Path(path).name)}</h1>",
+        "<p class='note'>Values are Monte Carlo estimates with their Monte Carlo standard "
+        "errors in parentheses; coverage is of each estimator's stored interval (bootstrap when "
+        "the study ran one, else Wald).</p>",
+        "<h2>Settings</h2>",
+        f"<pre>{esc(json.dumps(record, indent=2, sort_keys=True))}</pre>",
+    ]
+    with figure_style():
+        for (design, n), group in summary.groupby(["design", "n"], sort=False):
+            truth = group["truth"].iloc[0]
+            parts.append(
+                f"<h2>{esc(str(design))}, n = {int(n)} "
+                f"(target {esc(str(group['target'].iloc[0]))}, truth {truth:g})</h2>"
+            )
+            parts.append(
+                display_table(group).drop(columns=["design", "n"]).to_html(index=False, escape=True)
+            )
+            rows = results[(results["design"] == design) & (results["n"] == n)]
+            names = list(group["estimator"])
+            parts.append(_png_tag(error_figure(rows, names), "Error distribution per estimator"))
+            parts.append(
+                _png_tag(coverage_figure(group, level), "Interval coverage with Monte Carlo error")
+            )
+            weights = weight_figure(rows)
+            if weights is not None:
+                parts.append(
+                    _png_tag(weights, "Weights chosen by target-aimed stacking across replicates")
+                )
+    parts.append("</body></html>")
+    return "\n".join(parts)

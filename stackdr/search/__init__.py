@@ -1,0 +1,45 @@
+"""The weight search: convex weights over each library from a pair table (range LP, lattice
+search with polish, tie-breaks towards the prediction-loss weights) and the discrete pair
+selectors."""
+
+from stackdr.search._selection import (
+    CRITERIA,
+    SearchSettings,
+    discrete_pairs,
+    pseudo_risk,
+    pure_weights,
+    run_search,
+)
+from stackdr.search._solvers import (
+    SolveResult,
+    WeightSearch,
+    grid_refine,
+    lattice_resolution,
+    lattice_size,
+    minimise_range_cvxpy,
+    minimise_range_lp,
+    search_weights,
+    simplex_lattice,
+    tie_break_general,
+    tie_break_range,
+)
+
+__all__ = [
+    "CRITERIA",
+    "SearchSettings",
+    "SolveResult",
+    "WeightSearch",
+    "discrete_pairs",
+    "grid_refine",
+    "lattice_resolution",
+    "lattice_size",
+    "minimise_range_cvxpy",
+    "minimise_range_lp",
+    "pseudo_risk",
+    "pure_weights",
+    "run_search",
+    "search_weights",
+    "simplex_lattice",
+    "tie_break_general",
+    "tie_break_range",
+]
