@@ -36,10 +36,7 @@ from common import RESULTS, print_table, write_json  # noqa: E402
 
 from stackdr import BlendEstimator  # noqa: E402
 from stackdr.core import get_target  # noqa: E402
-from stackdr.estimation import (
-    CrossFitResult,  # noqa: E402
-    PreparedData,  # noqa: E402
-)
+from stackdr.estimation import CrossFitResult, PreparedData  # noqa: E402
 from stackdr.studies import get_design  # noqa: E402
 
 K = 5

@@ -4,8 +4,9 @@ was reorganised into subpackages (recorded at commit c82f2bd, file
 
 The numbers were recorded with one native thread; BLAS with several threads changes the
 summation order of the bootstrap's matrix products (last-digit differences), so every check
-runs under a one-thread limit (threadpoolctl). The settings that later releases may change (blend, tie-break scale, bootstrap size) are pinned
-here to their values at that commit, so this test keeps guarding the moved code paths.
+runs under a one-thread limit (threadpoolctl). The settings that later releases may change
+(blend, tie-break scale) are pinned here to their values at that commit, so this test keeps
+guarding the moved code paths.
 """
 
 from __future__ import annotations

@@ -30,9 +30,8 @@ from stackdr import BlendEstimator
 from stackdr.cli import main
 from stackdr.errors import InputError, LearnerError, PositivityWarning
 from stackdr.io import load_config, read_results_json
-
-from tests.helpers import KnownRegressor, confounded_data
 from tests.cli.test_cli import QUICK as CLI_QUICK
+from tests.helpers import KnownRegressor, confounded_data
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 

@@ -32,7 +32,6 @@ from stackdr.cli import main
 from stackdr.errors import InputError
 from stackdr.estimation import BlendEstimator
 from stackdr.io import estimator_kwargs, load_config, resolve_settings
-
 from tests.cli.test_cli import QUICK
 from tests.test_faults import estimate_args as fault_args
 

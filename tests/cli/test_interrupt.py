@@ -23,9 +23,8 @@ import pytest
 
 from stackdr.cli import main
 from stackdr.io import read_results_json
-
-from tests.helpers import confounded_data
 from tests.cli.test_cli import QUICK
+from tests.helpers import confounded_data
 from tests.test_faults import estimate_args
 
 # Learners slow enough that a run is still fitting when the signal arrives.

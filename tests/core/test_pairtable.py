@@ -17,7 +17,6 @@ from stackdr.core import (
     row_contributions,
 )
 from stackdr.estimation import CrossFitResult, cross_fit, prepare_data
-
 from tests.helpers import confounded_data
 
 

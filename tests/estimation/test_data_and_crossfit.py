@@ -12,7 +12,6 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 from stackdr.core import get_target
 from stackdr.errors import InputError, LearnerError
 from stackdr.estimation import cross_fit, make_folds, prepare_data
-
 from tests.helpers import confounded_data
 
 

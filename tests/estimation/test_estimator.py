@@ -9,7 +9,6 @@ from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
 
 from stackdr import BlendEstimator, Component, Target
 from stackdr.errors import InputError
-
 from tests.helpers import KnownClassifier, KnownRegressor, confounded_data
 
 

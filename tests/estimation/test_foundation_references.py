@@ -11,7 +11,6 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 from stackdr.core import blend_estimate, get_target, pair_inputs, pair_standard_errors, pair_table
 from stackdr.estimation import cross_fit, prepare_data
 from stackdr.studies import get_design
-
 from tests.helpers import KnownClassifier, KnownRegressor, confounded_data
 
 

@@ -9,7 +9,6 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 
 from stackdr import BlendEstimator, Component, Target
 from stackdr.inference import reweighting_bootstrap
-
 from tests.helpers import confounded_data
 
 PLAIN_MEAN = Target(

@@ -20,7 +20,6 @@ from stackdr.io import (
     blended_models,
     blended_nuisances,
 )
-
 from tests.helpers import confounded_data
 
 
