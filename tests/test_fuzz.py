@@ -281,7 +281,7 @@ def load_and_check(path: Path) -> str:
     try:
         config = load_config(path)
         values, _ = resolve_settings({}, config)
-        BlendEstimator("ate", **estimator_kwargs(values))._check_settings()
+        BlendEstimator(**{**estimator_kwargs(values), "target": "ate"})._validate_params()
         for side in ("propensity", "outcome"):
             config.library(side)
     except InputError as exc:

@@ -23,25 +23,24 @@ from pathlib import Path
 import pandas as pd
 
 from stackdr import __version__
-from stackdr.cli._study import add_cluster_options, cluster_from_args
+from stackdr.cli._common import (
+    CLI_DEFAULTS,
+    CLI_REQUIRED,
+    Parser,
+    add_cluster_options,
+    add_setting_flag,
+    cluster_from_args,
+    common_options,
+)
 from stackdr.cli._study import register as register_study
-from stackdr.core import BLENDS, TARGET_NAMES
 from stackdr.errors import InputError, StackdrError
-from stackdr.estimation import BOOTSTRAP_KINDS, CAUTION
+from stackdr.estimation import CAUTION, CONFIG_SETTINGS
 from stackdr.io import SETTINGS, estimator_kwargs, load_config, resolve_settings
-from stackdr.search import CRITERIA
 
 CSV_SUFFIXES = (".csv", ".tsv", ".txt")
 PARQUET_SUFFIXES = (".parquet", ".pq")
 DELIMITERS = (",", ";", "\t", "|")
 _DECIMAL_COMMA = re.compile(r"^[-+]?\d+(,\d+)?([eE][-+]?\d+)?$")
-
-
-class Parser(argparse.ArgumentParser):
-    """argparse with one-line error messages (exit code 2 as usual)."""
-
-    def error(self, message: str):
-        self.exit(2, f"{self.prog}: error: {message} (see {self.prog} --help)\n")
 
 
 # ----------------------------------------------------------------------------- reading data
@@ -196,7 +195,7 @@ def _run_estimate(args: argparse.Namespace) -> int:
     config = load_config(args.config) if args.config else None
     given = {key: getattr(args, key, None) for key in SETTINGS}
     values, _ = resolve_settings(given, config)
-    for key in ("data", "treatment", "outcome", "target", "out"):
+    for key in CLI_REQUIRED:
         if key not in values:
             how = "the DATA argument" if key == "data" else "--" + key
             raise InputError(
@@ -222,14 +221,14 @@ def _run_estimate(args: argparse.Namespace) -> int:
         coded = pd.to_numeric(frame[treatment], errors="coerce").dropna()
         binary = target.binary_treatment or bool(coded.isin([0, 1]).all())
         config.check_kinds("classifier" if binary else "regressor")
-    kwargs = {"progress": True, **estimator_kwargs(values)}
+    kwargs = {**CLI_DEFAULTS, **estimator_kwargs(values)}
     backend, cluster = cluster_from_args(args)
     if backend is not None:
         kwargs.update(backend=backend, cluster=cluster)
+    kwargs["target"] = target
     estimator = BlendEstimator(
-        target,
-        config.library("propensity") if config else None,
-        config.library("outcome") if config else None,
+        propensity_learners=config.library("propensity") if config else None,
+        outcome_learners=config.library("outcome") if config else None,
         **kwargs,
     )
     result = estimator.fit(frame, treatment, values["outcome"], values.get("covariates"))
@@ -351,18 +350,6 @@ def _run_demo(args: argparse.Namespace) -> int:
 # ----------------------------------------------------------------------------- parser
 
 
-def common_options() -> argparse.ArgumentParser:
-    """Parent parser with the options every command accepts (``--debug``)."""
-    parent = Parser(add_help=False)
-    parent.add_argument(
-        "--debug",
-        action="store_true",
-        default=argparse.SUPPRESS,
-        help="show the full traceback when something fails",
-    )
-    return parent
-
-
 def register(subparsers) -> None:
     """Register the core commands: estimate, report, learners, demo."""
     common = [common_options()]
@@ -377,79 +364,12 @@ def register(subparsers) -> None:
     est.add_argument(
         "data", nargs="?", default=None, metavar="DATA", help="CSV or Parquet file (by extension)"
     )
-    est.add_argument("--treatment", metavar="COL", help=SETTINGS["treatment"].help)
-    est.add_argument("--outcome", metavar="COL", help=SETTINGS["outcome"].help)
-    est.add_argument("--covariates", nargs="+", metavar="COL", help=SETTINGS["covariates"].help)
-    est.add_argument("--target", choices=TARGET_NAMES, help=SETTINGS["target"].help)
     est.add_argument(
         "--config", metavar="FILE.toml", help="TOML file declaring learner libraries and settings"
     )
-    est.add_argument("--folds", type=int, metavar="S", help="cross-fitting folds (default 5)")
-    est.add_argument(
-        "--repeats",
-        type=int,
-        metavar="R",
-        help="independent fold assignments combined by the median (default 1)",
-    )
-    est.add_argument(
-        "--bootstrap",
-        type=int,
-        metavar="B",
-        help="bootstrap replicates; 0 gives Wald intervals only (default 1000)",
-    )
-    est.add_argument(
-        "--bootstrap-kind",
-        choices=BOOTSTRAP_KINDS,
-        help="reweighting with multinomial or exponential (bayesian) row weights, "
-        "or refit every learner (default multinomial)",
-    )
-    est.add_argument(
-        "--blend", choices=BLENDS, help="how propensity learners are blended (default riesz)"
-    )
-    est.add_argument(
-        "--criterion", choices=CRITERIA, help="pseudo-risk minimised by the weights (default mixed)"
-    )
-    est.add_argument(
-        "--no-tie-break",
-        dest="tie_break",
-        action="store_const",
-        const=False,
-        help="take the pure pseudo-risk minimiser, without moving towards the "
-        "prediction-loss weights within the noise",
-    )
-    est.add_argument(
-        "--tie-break-scale",
-        type=float,
-        metavar="C",
-        help=SETTINGS["tie_break_scale"].help + " (default 0.5)",
-    )
-    est.add_argument(
-        "--clip",
-        type=float,
-        metavar="EPS",
-        help="clip propensities to [EPS, 1 - EPS] (default 0.01)",
-    )
-    est.add_argument("--seed", type=int, metavar="N", help="random seed (default 0)")
-    est.add_argument(
-        "--jobs",
-        type=int,
-        metavar="J",
-        help="parallel workers for learner fits (default 1; -1 all cores)",
-    )
-    est.add_argument(
-        "--no-progress",
-        dest="progress",
-        action="store_const",
-        const=False,
-        help="hide progress bars",
-    )
-    est.add_argument(
-        "--overwrite",
-        action="store_const",
-        const=True,
-        help="replace an existing results.json in the output folder",
-    )
-    est.add_argument("--out", metavar="DIR", help="output folder (created if missing)")
+    for key in CONFIG_SETTINGS:
+        if key != "data":
+            add_setting_flag(est, key)
     add_cluster_options(est, "learner fits and the refit bootstrap")
     est.set_defaults(run=_run_estimate)
 

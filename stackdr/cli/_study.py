@@ -13,6 +13,12 @@ from typing import Any
 
 import numpy as np
 
+from stackdr.cli._common import (
+    add_cluster_options,
+    add_setting_flag,
+    cluster_from_args,
+    common_options,
+)
 from stackdr.errors import InputError
 
 # Config-file settings a study cannot take: the design fixes data, columns and target, and where
@@ -20,35 +26,8 @@ from stackdr.errors import InputError
 _NOT_FOR_STUDIES = ("data", "treatment", "outcome", "covariates", "target", "out", "overwrite")
 
 
-def add_cluster_options(parser: argparse.ArgumentParser, what: str) -> None:
-    """--scheduler / --local-cluster: run ``what`` on a dask.distributed cluster."""
-    where = parser.add_mutually_exclusive_group()
-    where.add_argument(
-        "--scheduler", metavar="ADDRESS", help=f"run {what} on this dask.distributed scheduler"
-    )
-    where.add_argument(
-        "--local-cluster",
-        type=int,
-        metavar="N",
-        help=f"run {what} on a local dask.distributed cluster of N workers",
-    )
-
-
-def cluster_from_args(args: argparse.Namespace) -> tuple[str | None, str | int | None]:
-    """(backend, cluster) for BlendEstimator / run_study from the cluster options."""
-    if args.scheduler is not None:
-        return "dask", args.scheduler
-    if args.local_cluster is not None:
-        if args.local_cluster < 1:
-            raise InputError(f"--local-cluster needs at least 1 worker, got {args.local_cluster}")
-        return "dask", args.local_cluster
-    return None, None
-
-
 def register(subparsers) -> None:
     """Add the ``simulate`` and ``study`` commands to the ``stackdr`` parser."""
-    from stackdr.cli._main import common_options
-
     common = [common_options()]
     sim = subparsers.add_parser(
         "simulate",
@@ -82,15 +61,8 @@ def register(subparsers) -> None:
         choices=("default", "parametric"),
         help="built-in learner libraries (default: the estimator's defaults)",
     )
-    sim.add_argument(
-        "--bootstrap",
-        type=int,
-        metavar="B",
-        help="bootstrap replicates per fit; 0 gives Wald intervals (default 1000)",
-    )
-    sim.add_argument(
-        "--tie-break-scale", type=float, metavar="C", help="tie-break constant c (default 0.5)"
-    )
+    add_setting_flag(sim, "bootstrap")
+    add_setting_flag(sim, "tie_break_scale")
     sim.add_argument("--seed", type=int, metavar="S", help="study seed (default 0)")
     sim.add_argument(
         "--jobs",

@@ -2,15 +2,7 @@
 
 from stackdr.estimation._crossfit import CrossFitResult, cross_fit, make_folds
 from stackdr.estimation._data import PreparedData, prepare_data
-from stackdr.estimation._estimator import (
-    BOOTSTRAP_KINDS,
-    DIRECTIONS,
-    ESTIMATOR_PARAMS,
-    INTERVALS,
-    PLS,
-    BlendEstimator,
-    phi_function,
-)
+from stackdr.estimation._estimator import BlendEstimator, phi_function
 from stackdr.estimation._learners import (
     CATALOGUE,
     check_library,
@@ -22,6 +14,20 @@ from stackdr.estimation._learners import (
 )
 from stackdr.estimation._parallel import check_cluster, dask_backend, dask_jobs, parallel_backend
 from stackdr.estimation._results import CAUTION, BlendResult, EstimatorRow
+from stackdr.estimation._settings import (
+    BOOTSTRAP_KINDS,
+    CONFIG_SETTINGS,
+    DIRECTIONS,
+    ESTIMATOR_PARAMS,
+    INTERVALS,
+    SETTINGS,
+    STUDY_SETTINGS,
+    Setting,
+    check_value,
+    close_match,
+    settings_record,
+    validate_params,
+)
 
 __all__ = [
     "BOOTSTRAP_KINDS",
@@ -30,12 +36,17 @@ __all__ = [
     "DIRECTIONS",
     "ESTIMATOR_PARAMS",
     "INTERVALS",
-    "PLS",
+    "CONFIG_SETTINGS",
+    "SETTINGS",
+    "STUDY_SETTINGS",
     "BlendEstimator",
     "BlendResult",
     "CrossFitResult",
     "EstimatorRow",
     "PreparedData",
+    "Setting",
+    "check_value",
+    "close_match",
     "check_cluster",
     "check_library",
     "cross_fit",
@@ -50,4 +61,6 @@ __all__ = [
     "parametric_propensity_library",
     "phi_function",
     "prepare_data",
+    "settings_record",
+    "validate_params",
 ]

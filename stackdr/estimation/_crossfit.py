@@ -18,6 +18,7 @@ from sklearn.model_selection import KFold, StratifiedKFold
 from stackdr.core import Target
 from stackdr.errors import InputError, LearnerError, PositivityWarning
 from stackdr.estimation._data import PreparedData
+from stackdr.estimation._settings import validate_params
 
 
 @dataclass
@@ -188,12 +189,7 @@ def cross_fit(
     n_jobs : int
         joblib workers.
     """
-    if outcome_mode not in ("separate", "pooled"):
-        raise InputError(f"outcome_mode must be 'separate' or 'pooled', got {outcome_mode!r}")
-    if on_error not in ("drop", "raise"):
-        raise InputError(f"on_error must be 'drop' or 'raise', got {on_error!r}")
-    if not 0 <= clip < 0.5:
-        raise InputError(f"clip must be in [0, 0.5), got {clip!r}")
+    validate_params({"outcome_mode": outcome_mode, "on_error": on_error, "clip": clip})
     X, A, Y = data.X, data.A, data.Y
     n = data.n
     binary = bool(np.isin(A, (0.0, 1.0)).all())

@@ -8,12 +8,13 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
+from functools import partial
 
 import numpy as np
 import pandas as pd
+from sklearn.base import BaseEstimator, clone
 
 from stackdr.core import (
-    BLENDS,
     Target,
     blend_estimate,
     contrast_standard_error,
@@ -37,51 +38,15 @@ from stackdr.estimation._learners import (
 )
 from stackdr.estimation._parallel import check_cluster, dask_jobs, parallel_backend
 from stackdr.estimation._results import BlendResult, EstimatorRow
-from stackdr.search import SearchSettings, discrete_pairs, pseudo_risk, pure_weights, run_search
-
-DIRECTIONS = ("all", "credible")
-BOOTSTRAP_KINDS = ("multinomial", "bayesian", "refit")
-INTERVALS = ("percentile", "basic")
-ESTIMATOR_PARAMS = (
-    "target",
-    "propensity_learners",
-    "outcome_learners",
-    "folds",
-    "repeats",
-    "blend",
-    "criterion",
-    "tie_break",
-    "tie_break_scale",
-    "directions",
-    "direction_tolerance",
-    "clip",
-    "outcome_mode",
-    "on_error",
-    "level",
-    "bootstrap",
-    "bootstrap_kind",
-    "interval",
-    "chunk_size",
-    "seed",
-    "n_jobs",
-    "progress",
-    "backend",
-    "cluster",
+from stackdr.estimation._settings import settings_record, validate_params
+from stackdr.inference import InferenceSettings, refit_bootstrap, reweighting_bootstrap
+from stackdr.search import (
+    SearchSettings,
+    WeightContext,
+    comparison_weights,
+    pseudo_risk,
+    run_search,
 )
-# Settings left out of a result's record: objects, and where the work ran (not what it did).
-_NOT_RECORDED = (
-    "target",
-    "propensity_learners",
-    "outcome_learners",
-    "n_jobs",
-    "progress",
-    "backend",
-    "cluster",
-)
-MAIN = "target-aimed stacking"
-PURE = "target-aimed, no tie-break"
-PLS = "prediction-loss stacking"
-BEST = "best-predicting pair"
 
 
 @dataclass(frozen=True)
@@ -98,7 +63,7 @@ class Analysis:
     settings: SearchSettings
 
 
-class BlendEstimator:
+class BlendEstimator(BaseEstimator):
     """Target-aimed convex stacking of nuisance learners for a doubly robust target.
 
     Parameters
@@ -213,31 +178,9 @@ class BlendEstimator:
         self.backend = backend
         self.cluster = cluster
 
-    def get_params(self) -> dict:
-        """Constructor settings as a dict."""
-        return {k: getattr(self, k) for k in ESTIMATOR_PARAMS}
-
-    def _check_settings(self) -> None:
-        if self.blend not in BLENDS:
-            raise InputError(f"unknown blend {self.blend!r}; choose one of {', '.join(BLENDS)}")
-        if self.directions not in DIRECTIONS:
-            raise InputError(f"directions must be one of {DIRECTIONS}, got {self.directions!r}")
-        if not 0 < self.level < 1:
-            raise InputError(f"level must be between 0 and 1, got {self.level!r}")
-        if isinstance(self.repeats, bool) or int(self.repeats) != self.repeats or self.repeats < 1:
-            raise InputError(f"repeats must be a whole number >= 1, got {self.repeats!r}")
-        if (
-            isinstance(self.bootstrap, bool)
-            or int(self.bootstrap) != self.bootstrap
-            or (self.bootstrap < 0)
-        ):
-            raise InputError(f"bootstrap must be a whole number >= 0, got {self.bootstrap!r}")
-        if self.bootstrap_kind not in BOOTSTRAP_KINDS:
-            raise InputError(
-                f"bootstrap_kind must be one of {BOOTSTRAP_KINDS}, got {self.bootstrap_kind!r}"
-            )
-        if self.interval not in INTERVALS:
-            raise InputError(f"interval must be one of {INTERVALS}, got {self.interval!r}")
+    def _validate_params(self) -> None:
+        """Check every parameter against the settings table (the one validation entry point)."""
+        validate_params(self.get_params(deep=False))
         check_cluster(self.backend, self.cluster)
 
     def fit(self, data, treatment=None, outcome=None, covariates=None) -> BlendResult:
@@ -249,7 +192,7 @@ class BlendEstimator:
         treatment, outcome : column names (DataFrame) or arrays
         covariates : list of column names, optional (default: all other columns)
         """
-        self._check_settings()
+        self._validate_params()
         start = time.perf_counter()
         target = get_target(self.target)
         n_folds = self.folds if np.isscalar(self.folds) else 2
@@ -356,7 +299,18 @@ class BlendEstimator:
             tolerance=tolerance,
             masks=an.masks,
         )
-        selections = comparison_weights(an, search)
+        selections = comparison_weights(
+            WeightContext(
+                an.Psi,
+                search,
+                an.stack_alpha,
+                an.stack_beta,
+                an.losses["propensity"],
+                an.losses["outcome"],
+                an.masks,
+                settings,
+            )
+        )
         rows = [
             self._row(name, an, alpha, beta, blend, kind)
             for name, (alpha, beta, blend, kind) in selections.items()
@@ -375,28 +329,50 @@ class BlendEstimator:
             alpha=pd.Series(search.alpha, index=cf.propensity_names, name="propensity weight"),
             beta=pd.Series(search.beta, index=cf.outcome_names, name="outcome weight"),
             estimators=rows,
-            settings=self._settings_record(),
+            settings=settings_record(self.get_params(deep=False)),
             timings=timings,
         )
         if bootstrap and self.bootstrap:
-            from stackdr.inference import refit_bootstrap, reweighting_bootstrap
-
             t1 = time.perf_counter()
+            settings = self.inference_settings()
             if self.bootstrap_kind == "refit":
-                # --- backend/cluster: replicates go to the cluster; the copy they carry has no
+                if not np.isscalar(self.folds):
+                    raise InputError(
+                        "the refit bootstrap needs generated folds, not fixed fold labels"
+                    )
+                # --- backend/cluster: replicates go to the cluster; the clone they carry has no
                 # client (a client does not travel to workers) and runs its fits in place.
-                local = BlendEstimator(**{**self.get_params(), "backend": None, "cluster": None})
+                params = {**self.get_params(deep=False), "backend": None, "cluster": None}
+                local = clone(type(self)(**params))
                 with parallel_backend(self.backend, self.cluster, self.n_jobs or 1):
                     boot = refit_bootstrap(
-                        local,
+                        settings,
                         result,
+                        partial(local._fit_sample, target),
                         n_jobs=dask_jobs(self.n_jobs) if self.backend == "dask" else None,
                     )
             else:
-                boot = reweighting_bootstrap(self, result, chunk_size=self.chunk_size)
+                boot = reweighting_bootstrap(settings, result)
             result.attach_bootstrap(boot)
             timings["bootstrap"] = time.perf_counter() - t1
         return result
+
+    def inference_settings(self) -> InferenceSettings:
+        """The record the bootstraps work from."""
+        return InferenceSettings(
+            replicates=int(self.bootstrap),
+            kind=self.bootstrap_kind,
+            interval=self.interval,
+            seed=int(self.seed),
+            n_jobs=self.n_jobs,
+            progress=bool(self.progress),
+            chunk_size=self.chunk_size,
+        )
+
+    def _fit_sample(self, target: Target, prepared: PreparedData) -> BlendResult:
+        """Cross-fit and analyse validated data without a bootstrap (one refit replicate)."""
+        cf = self.cross_fit(prepared, target, n_jobs=1)
+        return self.analyse(prepared, target, cf, bootstrap=False)
 
     def _row(self, name, an: Analysis, alpha, beta, blend, kind) -> EstimatorRow:
         vals = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
@@ -407,14 +383,6 @@ class BlendEstimator:
         return EstimatorRow(
             name, kind, est, se, np.asarray(alpha), np.asarray(beta), risk, self.level
         )
-
-    def _settings_record(self) -> dict:
-        record = {k: getattr(self, k) for k in ESTIMATOR_PARAMS if k not in _NOT_RECORDED}
-        if not np.isscalar(record["folds"]):
-            record["folds"] = "user-supplied labels"
-        record["target"] = get_target(self.target).name
-        return record
-
 
 def combine_repeats(estimates, ses) -> tuple[float, float]:
     """Median over repeated splits, with the spread-adjusted SE of Chernozhukov et al. (2018)."""
@@ -489,22 +457,3 @@ def noise_floor_function(an: Analysis, settings: SearchSettings):
         )
 
     return tolerance
-
-
-def comparison_weights(an: Analysis, search) -> dict:
-    """(alpha, beta, blend, kind) of every estimator in the comparison table, main first."""
-    K1, K2 = an.Psi.shape
-    blend = an.settings.blend
-    e1, e2 = np.eye(K1), np.eye(K2)
-    out = {MAIN: (search.alpha, search.beta, blend, "target-aimed")}
-    pure = pure_weights(search, K1)
-    if an.settings.tie_break:
-        out[PURE] = (pure[0], pure[1], blend, "target-aimed")
-    # Prediction-loss stacking blends propensities on the probability scale (its natural form).
-    out[PLS] = (an.stack_alpha, an.stack_beta, "probability", "prediction-loss")
-    k_best = int(np.argmin(an.losses["propensity"]))
-    j_best = int(np.argmin(an.losses["outcome"]))
-    out[BEST] = (e1[k_best], e2[j_best], blend, "single pair")
-    for name, (k, j) in discrete_pairs(an.Psi, an.masks).items():
-        out[name] = (e1[k], e2[j], blend, "single pair")
-    return out

@@ -1,18 +1,26 @@
 """Inference: the reweighting bootstrap (reruns the weight search on reweighted pair tables) and
-the refit bootstrap (refits every learner)."""
+the refit bootstrap (refits every learner). Both take an :class:`InferenceSettings` record and a
+full-sample result, never the estimator object."""
 
-from stackdr.inference._reweighting import (
+from stackdr.inference._common import (
+    REWEIGHTING_KINDS,
     BootstrapResult,
+    InferenceSettings,
     draw_row_weights,
-    refit_bootstrap,
     replicate_generators,
-    reweighting_bootstrap,
+    summarise_replicates,
 )
+from stackdr.inference._refit import refit_bootstrap
+from stackdr.inference._reweighting import replicate_features, reweighting_bootstrap
 
 __all__ = [
+    "REWEIGHTING_KINDS",
     "BootstrapResult",
+    "InferenceSettings",
     "draw_row_weights",
     "refit_bootstrap",
+    "replicate_features",
     "replicate_generators",
     "reweighting_bootstrap",
+    "summarise_replicates",
 ]

@@ -29,10 +29,9 @@ from __future__ import annotations
 
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
-import pandas as pd
 from joblib import Parallel, delayed
 
 from stackdr.core import (
@@ -43,79 +42,22 @@ from stackdr.core import (
     nnls_stack_from_moments,
     pair_rows,
 )
-from stackdr.errors import InputError, StackdrError
+from stackdr.errors import InputError
+from stackdr.inference._common import (
+    REWEIGHTING_KINDS,
+    BootstrapResult,
+    InferenceSettings,
+    draw_row_weights,
+    replicate_generators,
+    summarise_replicates,
+)
 from stackdr.search import (
-    discrete_pairs,
+    WeightContext,
+    active_comparisons,
     lattice_resolution,
-    pure_weights,
     run_search,
     simplex_lattice,
 )
-
-KINDS = ("multinomial", "bayesian", "refit")
-METHODS = ("percentile", "basic")
-
-
-@dataclass
-class BootstrapResult:
-    """Replicate distribution and intervals.
-
-    Attributes
-    ----------
-    kind : "multinomial", "bayesian" or "refit"
-    method : "percentile" or "basic"
-    estimates : DataFrame (B x estimators)
-        Every replicate's estimate of every comparison estimator.
-    intervals : dict name -> (low, high)
-    standard_errors : dict name -> bootstrap SE
-    alpha, beta : DataFrame (B x learners)
-        Target-aimed weights chosen in each replicate.
-    selection_frequency : DataFrame
-        Share of replicates in which each learner received weight above 1%, and its mean weight.
-    tie_break_share : float
-        Share of replicates in which the tie-break moved the weights.
-    """
-
-    kind: str
-    method: str
-    level: float
-    estimates: pd.DataFrame
-    intervals: dict
-    standard_errors: dict
-    alpha: pd.DataFrame
-    beta: pd.DataFrame
-    selection_frequency: pd.DataFrame
-    tie_break_share: float
-    chunk_size: int
-    seconds: dict = field(default_factory=dict)
-
-    @property
-    def replicates(self) -> int:
-        return len(self.estimates)
-
-
-def replicate_generators(seed: int, replicates: int) -> list:
-    """One independent generator per replicate, so results do not depend on chunking or
-    worker count."""
-    children = np.random.SeedSequence([seed, 0xB007]).spawn(replicates)
-    return [np.random.default_rng(c) for c in children]
-
-
-def draw_row_weights(rng: np.random.Generator, n: int, kind: str) -> np.ndarray:
-    """Multinomial counts (the ordinary bootstrap) or mean-one exponential weights (Bayesian)."""
-    if kind == "multinomial":
-        return np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
-    w = rng.standard_exponential(n)
-    return w * (n / w.sum())
-
-
-def _interval(est: float, reps: np.ndarray, level: float, method: str) -> tuple[float, float]:
-    reps = reps[np.isfinite(reps)]
-    lo_q, hi_q = np.quantile(reps, [(1 - level) / 2, (1 + level) / 2])
-    if method == "percentile":
-        return float(lo_q), float(hi_q)
-    return float(2 * est - hi_q), float(2 * est - lo_q)
-
 
 # ----------------------------------------------------------------------------- features
 
@@ -253,8 +195,8 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
         alpha_s = nnls_stack_from_moments(s0[:, sl["hess"]].reshape(-1, K1, K1), s0[:, sl["grad"]])
     moments_s = time.perf_counter() - t0
 
-    names = cf_meta["estimators"]
-    out = {name: np.empty(len(indices)) for name in names}
+    comparisons = active_comparisons(settings)
+    out = {c.name: np.empty(len(indices)) for c in comparisons}
     alphas = np.empty((len(indices), K1))
     betas = np.empty((len(indices), K2))
     moved = np.zeros(len(indices), dtype=bool)
@@ -279,25 +221,32 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
             for k, r in search.records.items()
             if "tie_break" in k
         )
-        sel = {"target-aimed stacking": (search.alpha, search.beta)}
-        if settings.tie_break:
-            sel["target-aimed, no tie-break"] = pure_weights(search, K1)
-        loss_p = s0[col, sl["prop_loss"]]
-        loss_o = s0[col, sl["out_loss"]]
-        e1, e2 = np.eye(K1), np.eye(K2)
-        sel["best-predicting pair"] = (e1[int(np.argmin(loss_p))], e2[int(np.argmin(loss_o))])
-        for name, (k, j) in discrete_pairs(Psi, masks).items():
-            sel[name] = (e1[k], e2[j])
-        for name, (a, b) in sel.items():
+        ctx = WeightContext(
+            Psi,
+            search,
+            alpha_s[col],
+            beta_s[col],
+            s0[col, sl["prop_loss"]],
+            s0[col, sl["out_loss"]],
+            masks,
+            settings,
+        )
+        for comparison in comparisons:
+            if comparison.replicate != "weights":
+                continue
+            a, b = comparison.weights(ctx)
             if settings.blend == "riesz":
-                out[name][col] = a @ Psi @ b
+                out[comparison.name][col] = a @ Psi @ b
             else:
-                out[name][col] = phi_fn(np.asarray(a)[None])[0] @ b
+                out[comparison.name][col] = phi_fn(np.asarray(a)[None])[0] @ b
     search_s = time.perf_counter() - t1
-    out["prediction-loss stacking"] = np.median(
+    linearised = np.median(
         np.stack([_pls_estimates(sm, sl, K1, K2, alpha_s, beta_s, an.stack_alpha) for sm in sums]),
         axis=0,
     )
+    for comparison in comparisons:
+        if comparison.replicate == "linearised":
+            out[comparison.name] = linearised
     return (
         indices,
         out,
@@ -341,46 +290,29 @@ def _weighted_phi(inputs, blend, w, lattice, col: int):
 
 
 def reweighting_bootstrap(
-    estimator,
+    settings: InferenceSettings,
     result,
     *,
-    replicates: int | None = None,
-    kind: str | None = None,
-    method: str | None = None,
-    chunk_size: int | None = None,
     memory_budget: float = 256e6,
-    n_jobs: int | None = None,
 ) -> BootstrapResult:
     """Reweighting bootstrap of every comparison estimator, rerunning the weight search.
 
     Parameters
     ----------
-    estimator : BlendEstimator
-        Supplies the settings (and defaults for every argument below).
+    settings : InferenceSettings
+        Replicates, row-weight kind ("multinomial" counts or "bayesian" exponential weights),
+        interval method, seed, workers over chunks, progress and chunk size. Results do not
+        depend on the chunk size or the number of workers.
     result : BlendResult
         The full-sample fit whose out-of-fold predictions are reused.
-    replicates : int
-        B (default ``estimator.bootstrap``).
-    kind : {"multinomial", "bayesian"}
-        Multinomial counts or exponential (Bayesian bootstrap) row weights.
-    method : {"percentile", "basic"}
-    chunk_size : int, optional
-        Replicates per matrix product; default sized by ``memory_budget`` (bytes of the n x chunk
-        weight block). Results do not depend on it.
-    n_jobs : int, optional
-        Workers over chunks. Results do not depend on it.
+    memory_budget : float
+        Bytes of the n x chunk weight block when the chunk size is chosen automatically.
     """
-    B = int(estimator.bootstrap if replicates is None else replicates)
-    kind = kind or getattr(estimator, "bootstrap_kind", "multinomial")
-    method = method or getattr(estimator, "interval", "percentile")
-    if kind not in ("multinomial", "bayesian"):
+    B, kind = settings.check_replicates(), settings.kind
+    if kind not in REWEIGHTING_KINDS:
         raise InputError(
             f"reweighting bootstrap kind must be multinomial or bayesian, got {kind!r}"
         )
-    if method not in METHODS:
-        raise InputError(f"interval method must be one of {METHODS}, got {method!r}")
-    if B < 1:
-        raise InputError(f"bootstrap replicates must be >= 1, got {B}")
     an = result.analysis
     cf = result.crossfit
     prepared = result.data
@@ -390,18 +322,18 @@ def reweighting_bootstrap(
     ]
     feature_s = time.perf_counter() - t0
     n = prepared.n
+    chunk_size = settings.chunk_size
     if chunk_size is None:
         chunk_size = int(max(1, min(B, 256, memory_budget // (8 * n))))
     taus = _fixed_tolerances(result) if an.settings.tie_break else None
     names = [row.name for row in result.estimators]
-    meta = {"classifier": cf.propensity_kind == "classifier", "estimators": names}
-    gens = replicate_generators(int(estimator.seed), B)
+    meta = {"classifier": cf.propensity_kind == "classifier"}
+    gens = replicate_generators(settings.seed, B)
     chunks = [list(range(s, min(B, s + chunk_size))) for s in range(0, B, chunk_size)]
-    jobs = estimator.n_jobs if n_jobs is None else n_jobs
-    run = Parallel(n_jobs=jobs, return_as="generator")(
+    run = Parallel(n_jobs=settings.n_jobs, return_as="generator")(
         delayed(_chunk)(an, features, an.inputs, meta, gens, idx, kind, taus) for idx in chunks
     )
-    if getattr(estimator, "progress", False):
+    if settings.progress:
         from tqdm.auto import tqdm
 
         run = tqdm(run, total=len(chunks), desc="bootstrap", unit="chunk")
@@ -419,7 +351,9 @@ def reweighting_bootstrap(
             for key, value in secs.items():
                 stage[key] += value
     stage["total"] = time.perf_counter() - t0
-    return summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk_size, stage)
+    return summarise_replicates(
+        result, est, alphas, betas, moved, kind, settings.interval, chunk_size, stage
+    )
 
 
 def _fixed_tolerances(result) -> dict:
@@ -431,132 +365,3 @@ def _fixed_tolerances(result) -> dict:
     return out
 
 
-def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk, stage):
-    """Intervals, SEs and selection stability from replicate estimates and weights."""
-    level = result.level
-    names = list(est)
-    frame = pd.DataFrame(est)
-    point = {row.name: row.estimate for row in result.estimators}
-    intervals = {nm: _interval(point[nm], frame[nm].to_numpy(), level, method) for nm in names}
-    ses = {
-        nm: float(np.nanstd(frame[nm].to_numpy(), ddof=1)) if len(frame) > 1 else np.nan
-        for nm in names
-    }
-    cf = result.crossfit
-    a = pd.DataFrame(alphas, columns=cf.propensity_names)
-    b = pd.DataFrame(betas, columns=cf.outcome_names)
-    freq = pd.concat(
-        [
-            pd.DataFrame(
-                {
-                    "side": "propensity",
-                    "learner": a.columns,
-                    "share_weighted": (a.dropna() > 0.01).mean().to_numpy(),
-                    "mean_weight": a.mean().to_numpy(),
-                }
-            ),
-            pd.DataFrame(
-                {
-                    "side": "outcome",
-                    "learner": b.columns,
-                    "share_weighted": (b.dropna() > 0.01).mean().to_numpy(),
-                    "mean_weight": b.mean().to_numpy(),
-                }
-            ),
-        ],
-        ignore_index=True,
-    )
-    return BootstrapResult(
-        kind,
-        method,
-        level,
-        frame,
-        intervals,
-        ses,
-        a,
-        b,
-        freq,
-        float(moved.mean()) if moved.size else 0.0,
-        chunk,
-        stage,
-    )
-
-
-def _refit_one(estimator, prepared, target, rows):
-    """One refit replicate: (estimates, alpha, beta, tie-break moved), or the reason it could
-    not be fitted. A resample can leave an arm too small for the folds or make every learner of
-    a side fail; that replicate is left out rather than ending the run."""
-    data = prepared.take(rows)
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            cf = estimator.cross_fit(data, target, n_jobs=1)
-            res = estimator.analyse(data, target, cf, bootstrap=False)
-    except StackdrError as exc:
-        return f"{type(exc).__name__}: {exc}"
-    return (
-        {row.name: row.estimate for row in res.estimators},
-        res.alpha,
-        res.beta,
-        res.tie_break_active,
-    )
-
-
-def refit_bootstrap(
-    estimator,
-    result,
-    *,
-    replicates: int | None = None,
-    method: str | None = None,
-    n_jobs: int | None = None,
-) -> BootstrapResult:
-    """Resample rows and redo cross-fitting, learner fits and the weight search in each
-    replicate (parallel through joblib). Fold labels given by the user cannot be resampled; a
-    row drawn twice may sit in training and test folds at once, as is usual for this bootstrap."""
-    if not np.isscalar(estimator.folds):
-        raise InputError("the refit bootstrap needs generated folds, not fixed fold labels")
-    B = int(estimator.bootstrap if replicates is None else replicates)
-    method = method or getattr(estimator, "interval", "percentile")
-    prepared = result.data
-    gens = replicate_generators(int(estimator.seed), B)
-    n = prepared.n
-    t0 = time.perf_counter()
-    tasks = (
-        delayed(_refit_one)(estimator, prepared, result.target, g.integers(0, n, n)) for g in gens
-    )
-    run = Parallel(n_jobs=estimator.n_jobs if n_jobs is None else n_jobs, return_as="generator")(
-        tasks
-    )
-    if getattr(estimator, "progress", False):
-        from tqdm.auto import tqdm
-
-        run = tqdm(run, total=B, desc="refit bootstrap", unit="replicate")
-    names = [row.name for row in result.estimators]
-    est = {name: np.full(B, np.nan) for name in names}
-    alphas = np.zeros((B, len(result.alpha)))
-    betas = np.zeros((B, len(result.beta)))
-    moved = np.zeros(B, dtype=bool)
-    failed = []
-    for b, outcome in enumerate(run):
-        if isinstance(outcome, str):
-            failed.append(outcome)
-            alphas[b], betas[b] = np.nan, np.nan
-            continue
-        vals, a, bb, mv = outcome
-        for name in names:
-            est[name][b] = vals.get(name, np.nan)
-        # A learner that failed in a replicate was dropped there: its weight is zero.
-        alphas[b] = a.reindex(result.alpha.index, fill_value=0.0).to_numpy()
-        betas[b] = bb.reindex(result.beta.index, fill_value=0.0).to_numpy()
-        moved[b] = mv
-    if len(failed) == B:
-        raise InputError(f"no refit bootstrap replicate could be fitted; the first: {failed[0]}")
-    if failed:
-        warnings.warn(
-            f"{len(failed)} of {B} refit bootstrap replicates could not be fitted and were left "
-            f"out of the interval (the first: {failed[0]})",
-            RuntimeWarning,
-            stacklevel=2,
-        )
-    stage = {"total": time.perf_counter() - t0}
-    return summarise_replicates(result, est, alphas, betas, moved, "refit", method, 1, stage)

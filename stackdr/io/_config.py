@@ -25,7 +25,6 @@ override the built-in defaults (:func:`resolve_settings`).
 
 from __future__ import annotations
 
-import difflib
 import tomllib
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -34,90 +33,17 @@ from typing import Any
 
 from sklearn.base import BaseEstimator
 
-from stackdr.core import BLENDS, TARGET_NAMES
 from stackdr.errors import InputError
-from stackdr.estimation import BOOTSTRAP_KINDS, CATALOGUE, DIRECTIONS, INTERVALS, make_learner
-from stackdr.search import CRITERIA
+from stackdr.estimation import CATALOGUE, CONFIG_SETTINGS, check_value, close_match, make_learner
 
 SIDES = ("propensity", "outcome")
 
 
-@dataclass(frozen=True)
-class Setting:
-    """One run setting: its value type, allowed values and meaning.
-
-    ``kind`` is one of "text", "whole", "number", "switch", "names" (a list of column names).
-    ``low`` and ``high`` bound numbers (``high`` exclusive when ``high_open``); ``low_open``
-    makes ``low`` exclusive.
-    """
-
-    kind: str
-    help: str
-    choices: tuple | None = None
-    low: float | None = None
-    high: float | None = None
-    low_open: bool = False
-    high_open: bool = False
-    path: bool = False
-
-
-SETTINGS: dict[str, Setting] = {
-    "data": Setting("text", "data file, CSV or Parquet", path=True),
-    "treatment": Setting("text", "treatment column (0/1, or numeric for target cov)"),
-    "outcome": Setting("text", "outcome column"),
-    "covariates": Setting("names", "covariate columns (default: every other column)"),
-    "target": Setting("text", "target parameter", choices=TARGET_NAMES),
-    "out": Setting("text", "output folder", path=True),
-    "overwrite": Setting("switch", "replace an existing results.json"),
-    "folds": Setting("whole", "cross-fitting folds (1 fits in sample)", low=1),
-    "repeats": Setting("whole", "independent fold assignments, combined by the median", low=1),
-    "bootstrap": Setting("whole", "bootstrap replicates (0: Wald intervals only)", low=0),
-    "bootstrap_kind": Setting("text", "bootstrap kind", choices=BOOTSTRAP_KINDS),
-    "blend": Setting("text", "how propensity learners are blended", choices=BLENDS),
-    "criterion": Setting("text", "pseudo-risk minimised by the weights", choices=CRITERIA),
-    "tie_break": Setting("switch", "move towards prediction-loss weights within the noise"),
-    "tie_break_scale": Setting("number", "tie-break tolerance in standard errors", low=0),
-    "clip": Setting("number", "propensity clipping bound", low=0, high=0.5, high_open=True),
-    "seed": Setting("whole", "random seed for folds and bootstrap", low=0),
-    "jobs": Setting("whole", "parallel workers for learner fits (-1: all cores)", low=-1),
-    "progress": Setting("switch", "show progress bars"),
-    "level": Setting("number", "confidence level", low=0, high=1, low_open=True, high_open=True),
-    "interval": Setting("text", "bootstrap interval type", choices=INTERVALS),
-    "directions": Setting("text", "learners whose swaps define the perturbations", DIRECTIONS),
-    "direction_tolerance": Setting("number", "relative loss tolerance for credible", low=0),
-    "outcome_mode": Setting("text", "per-arm or pooled outcome models", ("separate", "pooled")),
-    "on_error": Setting("text", "what to do with a failing learner", ("drop", "raise")),
-}
-
-# Settings that configure BlendEstimator directly (the others describe the run: files, columns).
-ESTIMATOR_SETTINGS = {
-    "folds": "folds",
-    "repeats": "repeats",
-    "bootstrap": "bootstrap",
-    "bootstrap_kind": "bootstrap_kind",
-    "blend": "blend",
-    "criterion": "criterion",
-    "tie_break": "tie_break",
-    "tie_break_scale": "tie_break_scale",
-    "clip": "clip",
-    "seed": "seed",
-    "jobs": "n_jobs",
-    "progress": "progress",
-    "level": "level",
-    "interval": "interval",
-    "directions": "directions",
-    "direction_tolerance": "direction_tolerance",
-    "outcome_mode": "outcome_mode",
-    "on_error": "on_error",
-}
-
-_KIND_WORDS = {
-    "text": "text",
-    "whole": "a whole number",
-    "number": "a number",
-    "switch": "true or false",
-    "names": "a list of column names",
-}
+#: Settings by configuration key (``jobs``, ``tie_break_scale``, ...), from the settings table.
+SETTINGS = CONFIG_SETTINGS
+#: Configuration key -> BlendEstimator parameter, for the settings that configure the estimator
+#: (the others describe the run: files, columns).
+ESTIMATOR_SETTINGS = {key: s.name for key, s in CONFIG_SETTINGS.items() if s.estimator}
 
 
 @dataclass(frozen=True)
@@ -199,13 +125,9 @@ class RunConfig:
         }
 
 
-def _close(word: str, options) -> str:
-    match = difflib.get_close_matches(word, list(options), n=1)
-    return f" (did you mean {match[0]!r}?)" if match else ""
-
-
 def check_setting(name: str, value: Any, origin: str) -> Any:
-    """Type- and range-check one setting; returns the value (ints accepted as numbers).
+    """Type- and range-check one setting given by its configuration key; returns the value
+    (ints accepted as numbers).
 
     Parameters
     ----------
@@ -222,48 +144,8 @@ def check_setting(name: str, value: Any, origin: str) -> Any:
         Naming the setting, the origin and the value.
     """
     if name not in SETTINGS:
-        raise InputError(f"{origin}: unknown setting {name!r}{_close(name, SETTINGS)}")
-    spec = SETTINGS[name]
-    is_number = isinstance(value, (int, float)) and not isinstance(value, bool)
-    ok = {
-        "text": isinstance(value, str),
-        "whole": isinstance(value, int) and not isinstance(value, bool),
-        "number": is_number,
-        "switch": isinstance(value, bool),
-        "names": isinstance(value, list) and all(isinstance(v, str) for v in value),
-    }[spec.kind]
-    if not ok:
-        raise InputError(
-            f"{origin}: setting {name!r} must be {_KIND_WORDS[spec.kind]}, got {value!r}"
-        )
-    if spec.choices is not None and value not in spec.choices:
-        raise InputError(
-            f"{origin}: {name} must be one of {', '.join(spec.choices)}, got {value!r}"
-            f"{_close(value, spec.choices)}"
-        )
-    if is_number:
-        too_low = spec.low is not None and (
-            value <= spec.low if spec.low_open else value < spec.low
-        )
-        too_high = spec.high is not None and (
-            value >= spec.high if spec.high_open else value > spec.high
-        )
-        if too_low or too_high or value != value:
-            raise InputError(f"{origin}: {name} must be {_range_text(spec)}, got {value!r}")
-        if name == "jobs" and value == 0:
-            raise InputError(f"{origin}: jobs must be -1 (all cores) or at least 1, got 0")
-    if spec.kind == "names" and not value:
-        raise InputError(f"{origin}: {name} is an empty list")
-    return float(value) if spec.kind == "number" else value
-
-
-def _range_text(spec: Setting) -> str:
-    parts = []
-    if spec.low is not None:
-        parts.append(f"{'>' if spec.low_open else '>='} {spec.low:g}")
-    if spec.high is not None:
-        parts.append(f"{'<' if spec.high_open else '<='} {spec.high:g}")
-    return " and ".join(parts)
+        raise InputError(f"{origin}: unknown setting {name!r}{close_match(name, SETTINGS)}")
+    return check_value(SETTINGS[name], value, origin)
 
 
 def load_config(path: str | Path) -> RunConfig:
@@ -311,8 +193,9 @@ def parse_config(raw: Mapping, path: Path | None = None) -> RunConfig:
     label = f"config file {str(path)!r}" if path else "configuration"
     unknown = [key for key in raw if key not in ("settings", *SIDES)]
     if unknown:
+        hint = close_match(unknown[0], ("settings", *SIDES))
         raise InputError(
-            f"{label}: unknown section [{unknown[0]}]{_close(unknown[0], ('settings', *SIDES))}; "
+            f"{label}: unknown section [{unknown[0]}]{hint}; "
             "sections are [settings], [propensity.NAME] and [outcome.NAME]"
         )
     settings_raw = raw.get("settings", {})
@@ -348,7 +231,7 @@ def _parse_library(section: Any, side: str, label: str) -> dict[str, LearnerSpec
             raise InputError(f"{where}: learner must be a catalogue name (text), got {learner!r}")
         if learner not in CATALOGUE:
             raise InputError(
-                f"{where}: unknown learner {learner!r}{_close(learner, CATALOGUE)}; "
+                f"{where}: unknown learner {learner!r}{close_match(learner, CATALOGUE)}; "
                 "`stackdr learners` lists the catalogue"
             )
         try:

@@ -28,6 +28,7 @@ from stackdr.reporting._figures import (
     label,
     render_png,
 )
+from stackdr.search import ESTIMATOR_ORDER
 from stackdr.studies import read_results, summarise_study
 
 # (summary column, its MC SE column, header) in display order.
@@ -126,17 +127,6 @@ def summary_text(summary: pd.DataFrame) -> str:
 # ------------------------------------------------------------------------------------ ordering
 
 # The comparison table's order; other estimators (user replicate functions) follow by name.
-ESTIMATOR_ORDER = (
-    "target-aimed stacking",
-    "target-aimed, no tie-break",
-    "prediction-loss stacking",
-    "best-predicting pair",
-    "mixed-minimax pair",
-    "minimax pair",
-    "oracle pair",
-)
-
-
 def _estimator_rank(name: str) -> tuple[int, str]:
     return (ESTIMATOR_ORDER.index(name) if name in ESTIMATOR_ORDER else len(ESTIMATOR_ORDER), name)
 

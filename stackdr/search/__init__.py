@@ -2,6 +2,21 @@
 search with polish, tie-breaks towards the prediction-loss weights) and the discrete pair
 selectors."""
 
+from stackdr.search._comparisons import (
+    BEST,
+    COMPARISONS,
+    ESTIMATOR_ORDER,
+    MAIN,
+    MINIMAX_PAIR,
+    MIXED_PAIR,
+    ORACLE,
+    PLS,
+    PURE,
+    Comparison,
+    WeightContext,
+    active_comparisons,
+    comparison_weights,
+)
 from stackdr.search._selection import (
     CRITERIA,
     SearchSettings,
@@ -25,7 +40,20 @@ from stackdr.search._solvers import (
 )
 
 __all__ = [
+    "BEST",
+    "COMPARISONS",
     "CRITERIA",
+    "ESTIMATOR_ORDER",
+    "MAIN",
+    "MINIMAX_PAIR",
+    "MIXED_PAIR",
+    "ORACLE",
+    "PLS",
+    "PURE",
+    "Comparison",
+    "WeightContext",
+    "active_comparisons",
+    "comparison_weights",
     "SearchSettings",
     "SolveResult",
     "WeightSearch",

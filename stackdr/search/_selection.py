@@ -10,7 +10,6 @@ from dataclasses import dataclass
 import numpy as np
 
 from stackdr.core import minimax_risk, mixed_risk
-from stackdr.errors import InputError
 from stackdr.search._solvers import search_weights
 
 CRITERIA = ("mixed", "minimax")
@@ -18,7 +17,8 @@ CRITERIA = ("mixed", "minimax")
 
 @dataclass(frozen=True)
 class SearchSettings:
-    """Settings of the target-aimed weight search.
+    """Settings of the target-aimed weight search (a record; the values are validated by the
+    estimator's settings table).
 
     criterion : "mixed" (mixed-minimax pseudo-risk, default) or "minimax".
     blend : "riesz", "probability" or "logit".
@@ -32,12 +32,6 @@ class SearchSettings:
     tie_break: bool = True
     tie_break_scale: float = 0.5
     resolution: int | None = None
-
-    def __post_init__(self) -> None:
-        if self.criterion not in CRITERIA:
-            raise InputError(f"unknown criterion {self.criterion!r}; choose one of {CRITERIA}")
-        if not np.isfinite(self.tie_break_scale) or self.tie_break_scale < 0:
-            raise InputError(f"tie_break_scale must be >= 0, got {self.tie_break_scale!r}")
 
 
 def pseudo_risk(criterion: str, phi_alpha, chi_beta, psi, masks) -> float:

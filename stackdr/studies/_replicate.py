@@ -25,30 +25,18 @@ from scipy.stats import norm
 from stackdr.core import Target, estimate_from_rows, get_target
 from stackdr.errors import InputError
 from stackdr.estimation import (
-    ESTIMATOR_PARAMS,
+    STUDY_SETTINGS,
     BlendEstimator,
     check_library,
     make_learner,
     parametric_outcome_library,
     parametric_propensity_library,
+    validate_params,
 )
+from stackdr.search import ORACLE
 from stackdr.studies._designs import DesignData
 
 LIBRARIES = ("default", "parametric")
-ORACLE = "oracle pair"
-# The target comes from the design, the seed from the replicate, and parallelism is the study's
-# business; every other estimator setting passes through.
-_NOT_STUDY_SETTINGS = (
-    "target",
-    "propensity_learners",
-    "outcome_learners",
-    "seed",
-    "n_jobs",
-    "progress",
-    "backend",
-    "cluster",
-)
-STUDY_SETTINGS = tuple(p for p in ESTIMATOR_PARAMS if p not in _NOT_STUDY_SETTINGS)
 _SIDES = ("propensity", "outcome")
 
 
@@ -120,9 +108,7 @@ def check_settings(settings: Mapping[str, Any]) -> dict[str, Any]:
             f"unknown estimator setting {unknown[0]!r} for a study; allowed: "
             + ", ".join(STUDY_SETTINGS)
         )
-    estimator = BlendEstimator(**settings)
-    estimator._check_settings()
-    estimator.search_settings()
+    validate_params(settings)
     return dict(settings)
 
 

@@ -79,7 +79,7 @@ def test_backend_settings_are_checked():
         check_cluster(None, "tcp://127.0.0.1:8786")
     with pytest.raises(InputError, match="positive local cluster size"):
         check_cluster("dask", 0)
-    with pytest.raises(InputError, match="backend must be None"):
+    with pytest.raises(InputError, match="backend must be one of None, dask, got 'threads'"):
         BlendEstimator(backend="threads").fit(np.zeros((10, 1)), np.ones(10), np.ones(10))
     with parallel_backend(None):
         pass

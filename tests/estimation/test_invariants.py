@@ -21,9 +21,9 @@ from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
 
 from stackdr import BlendEstimator
-from stackdr.estimation import PLS, make_folds
+from stackdr.estimation import make_folds
 from stackdr.io import result_to_dict
-from stackdr.search import discrete_pairs, pseudo_risk
+from stackdr.search import PLS, discrete_pairs, pseudo_risk
 from tests.helpers import confounded_data
 
 # Bounded, reproducible runs; no example database written into the work tree. Examples that

@@ -1,6 +1,8 @@
 """Reweighting and refit bootstrap: agreement with scipy's bootstrap on a plain mean, invariance to
 chunking and workers, weights on the simplex in every replicate."""
 
+from dataclasses import replace
+
 import numpy as np
 import pytest
 from scipy import stats
@@ -85,8 +87,9 @@ def test_bootstrap_zero_disables(small_fit):
 
 def test_invariant_to_chunk_size_and_workers(small_fit):
     est, res = small_fit
-    a = reweighting_bootstrap(est, res, replicates=60, chunk_size=60, n_jobs=1)
-    b = reweighting_bootstrap(est, res, replicates=60, chunk_size=7, n_jobs=2)
+    settings = est.inference_settings()
+    a = reweighting_bootstrap(replace(settings, replicates=60, chunk_size=60, n_jobs=1), res)
+    b = reweighting_bootstrap(replace(settings, replicates=60, chunk_size=7, n_jobs=2), res)
     np.testing.assert_allclose(
         a.estimates.to_numpy(), b.estimates.to_numpy(), rtol=1e-9, atol=1e-12
     )
@@ -97,7 +100,8 @@ def test_invariant_to_chunk_size_and_workers(small_fit):
 
 def test_replicate_weights_on_simplex_and_stability(small_fit):
     est, res = small_fit
-    boot = reweighting_bootstrap(est, res, replicates=80, kind="bayesian", method="basic")
+    settings = replace(est.inference_settings(), replicates=80, kind="bayesian", interval="basic")
+    boot = reweighting_bootstrap(settings, res)
     for w in (boot.alpha.to_numpy(), boot.beta.to_numpy()):
         assert (w >= -1e-12).all()
         np.testing.assert_allclose(w.sum(axis=1), 1.0, atol=1e-9)

@@ -89,7 +89,7 @@ def test_estimator_settings_are_blend_estimator_arguments(tmp_path):
     params = set(inspect.signature(BlendEstimator).parameters)
     assert set(ESTIMATOR_SETTINGS.values()) <= params
     config = load_config(write(tmp_path, FULL))
-    est = BlendEstimator("att", **estimator_kwargs(config.settings))
+    est = BlendEstimator(**{**estimator_kwargs(config.settings), "target": "att"})
     got = est.get_params()
     assert got["n_jobs"] == 2 and got["blend"] == "logit" and got["level"] == 0.9
     assert got["tie_break"] is False and got["clip"] == 0.02

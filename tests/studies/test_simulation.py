@@ -228,7 +228,7 @@ def test_replicate_is_picklable_and_validates_settings():
         make_replicate("default", n_jobs=2)
     with pytest.raises(InputError, match="unknown library 'tiny'"):
         make_replicate("tiny")
-    with pytest.raises(InputError, match="bootstrap must be a whole number"):
+    with pytest.raises(InputError, match="bootstrap must be >= 0, got -1"):
         make_replicate("default", bootstrap=-1)
     with pytest.raises(InputError, match="unknown learner 'forest'"):
         make_replicate({"outcome": {"f": {"learner": "forest"}}})

@@ -1,0 +1,149 @@
+"""The registry of comparison estimators: every row of the comparison table, declared once.
+
+Each :class:`Comparison` says how its weights come from a :class:`WeightContext` (the pair table,
+the weight search, the prediction-loss stacking weights and per-learner losses of one sample),
+which blend its estimate uses, whether it appears under the current settings, and how the
+reweighting bootstrap recomputes it. The estimator's full-sample table, the bootstrap
+replicates, the study replicate and both reports read :data:`COMPARISONS`, so adding an
+estimator means adding one entry here.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
+from functools import cached_property
+
+import numpy as np
+
+from stackdr.search._selection import SearchSettings, discrete_pairs, pure_weights
+
+MAIN = "target-aimed stacking"
+PURE = "target-aimed, no tie-break"
+PLS = "prediction-loss stacking"
+BEST = "best-predicting pair"
+MIXED_PAIR = "mixed-minimax pair"
+MINIMAX_PAIR = "minimax pair"
+#: A study-only row: AIPW at the design's true nuisances (see ``stackdr.studies``).
+ORACLE = "oracle pair"
+
+
+@dataclass
+class WeightContext:
+    """The ingredients every comparison estimator chooses its weights from, for one sample
+    (the full sample or one bootstrap replicate).
+
+    Attributes
+    ----------
+    Psi : numpy.ndarray (K1, K2)
+        Pair table.
+    search : WeightSearch
+        The target-aimed search on this sample.
+    stack_alpha, stack_beta : numpy.ndarray
+        Prediction-loss stacking weights on this sample.
+    propensity_loss, outcome_loss : numpy.ndarray
+        Per-learner out-of-fold losses on this sample.
+    masks : tuple
+        Direction masks (propensity, outcome).
+    settings : SearchSettings
+    """
+
+    Psi: np.ndarray
+    search: object
+    stack_alpha: np.ndarray
+    stack_beta: np.ndarray
+    propensity_loss: np.ndarray
+    outcome_loss: np.ndarray
+    masks: tuple
+    settings: SearchSettings
+
+    @cached_property
+    def pairs(self) -> dict:
+        """The discrete selectors' pairs (computed once for both of them)."""
+        return discrete_pairs(self.Psi, self.masks)
+
+    def vertex(self, k: int, j: int) -> tuple[np.ndarray, np.ndarray]:
+        K1, K2 = self.Psi.shape
+        return np.eye(K1)[k], np.eye(K2)[j]
+
+
+def _always(settings: SearchSettings) -> bool:
+    return True
+
+
+@dataclass(frozen=True)
+class Comparison:
+    """One comparison estimator.
+
+    Attributes
+    ----------
+    name : str
+        Row name in tables, reports and study files; the tuple order of :data:`COMPARISONS` is
+        the row order everywhere.
+    kind : str
+        "target-aimed", "prediction-loss" or "single pair".
+    weights : callable
+        ``weights(context) -> (alpha, beta)``, the same rule in the full sample and in every
+        bootstrap replicate.
+    blend : str or None
+        The blend of the row's estimate; None means the search's blend.
+    shown : callable
+        ``shown(settings) -> bool``: whether the row exists under these settings.
+    replicate : str
+        How the reweighting bootstrap recomputes the estimate: "weights" (the replicate's weights
+        from ``weights`` on the replicate's context, evaluated on the replicate's pair table) or
+        "linearised" (a dedicated first-order expansion, for prediction-loss stacking whose
+        probability-scale blend is not linear in the replicate row weights).
+    """
+
+    name: str
+    kind: str
+    weights: Callable[[WeightContext], tuple]
+    blend: str | None = None
+    shown: Callable[[SearchSettings], bool] = _always
+    replicate: str = "weights"
+
+    def row_blend(self, settings: SearchSettings) -> str:
+        return settings.blend if self.blend is None else self.blend
+
+
+def _best_predicting(ctx: WeightContext):
+    return ctx.vertex(int(np.argmin(ctx.propensity_loss)), int(np.argmin(ctx.outcome_loss)))
+
+
+COMPARISONS: tuple[Comparison, ...] = (
+    Comparison(MAIN, "target-aimed", lambda ctx: (ctx.search.alpha, ctx.search.beta)),
+    Comparison(
+        PURE,
+        "target-aimed",
+        lambda ctx: pure_weights(ctx.search, ctx.Psi.shape[0]),
+        shown=lambda settings: settings.tie_break,
+    ),
+    # Prediction-loss stacking blends propensities on the probability scale (its natural form).
+    Comparison(
+        PLS,
+        "prediction-loss",
+        lambda ctx: (ctx.stack_alpha, ctx.stack_beta),
+        blend="probability",
+        replicate="linearised",
+    ),
+    Comparison(BEST, "single pair", _best_predicting),
+    Comparison(MIXED_PAIR, "single pair", lambda ctx: ctx.vertex(*ctx.pairs[MIXED_PAIR])),
+    Comparison(MINIMAX_PAIR, "single pair", lambda ctx: ctx.vertex(*ctx.pairs[MINIMAX_PAIR])),
+)
+
+#: Row order of every table and report (study-only rows last).
+ESTIMATOR_ORDER: tuple[str, ...] = (*(c.name for c in COMPARISONS), ORACLE)
+
+
+def active_comparisons(settings: SearchSettings) -> tuple[Comparison, ...]:
+    """The comparison estimators shown under these settings, in table order."""
+    return tuple(c for c in COMPARISONS if c.shown(settings))
+
+
+def comparison_weights(ctx: WeightContext) -> dict:
+    """``name -> (alpha, beta, blend, kind)`` of every shown comparison estimator, main first."""
+    return {
+        c.name: (*c.weights(ctx), c.row_blend(ctx.settings), c.kind)
+        for c in active_comparisons(ctx.settings)
+    }
