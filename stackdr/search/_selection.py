@@ -11,7 +11,7 @@ import numpy as np
 
 from stackdr.core import minimax_risk, mixed_risk
 from stackdr.errors import InputError
-from stackdr.search._solvers import search_weights
+from stackdr.search._weights import search_weights
 
 CRITERIA = ("mixed", "minimax")
 
