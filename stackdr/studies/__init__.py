@@ -19,16 +19,17 @@ from stackdr.studies._replicate import (
     oracle_row,
     simulate_replicate,
 )
-from stackdr.studies._runner import (
-    MixedCodeWarning,
-    ReplicateError,
+from stackdr.studies._runner import ReplicateError, replicate_seeds, run_study
+from stackdr.studies._store import (
     StudyCodeError,
     StudyExistsError,
     StudySettingsError,
+    read_study_record,
+)
+from stackdr.studies._summaries import (
+    MixedCodeWarning,
     paired_differences,
     read_results,
-    replicate_seeds,
-    run_study,
     summarise_study,
 )
 
@@ -53,6 +54,7 @@ __all__ = [
     "oracle_row",
     "paired_differences",
     "read_results",
+    "read_study_record",
     "register_design",
     "replicate_seeds",
     "run_study",
