@@ -2,14 +2,9 @@
 its summaries; and the built-in demo scenario."""
 
 from stackdr.studies._demo import DESCRIPTION, TRUE_EFFECT, simulate_demo
-from stackdr.studies._designs import (
-    Design,
-    DesignData,
-    get_design,
-    kang_schafer_transform,
-    list_designs,
-    register_design,
-)
+from stackdr.studies._design_library import kang_schafer_transform
+from stackdr.studies._design_registry import get_design, list_designs, register_design
+from stackdr.studies._designs import Design, DesignData
 from stackdr.studies._replicate import (
     ORACLE,
     STUDY_SETTINGS,

@@ -40,7 +40,8 @@ from tqdm import tqdm
 
 from stackdr.errors import InputError, StackdrError
 from stackdr.estimation import check_cluster, dask_backend, dask_jobs
-from stackdr.studies._designs import Design, DesignData, get_design
+from stackdr.studies._design_registry import get_design
+from stackdr.studies._designs import Design, DesignData
 from stackdr.studies._store import open_study, to_json, write_replicate
 
 STANDARD_FIELDS = ("name", "estimate", "se", "low", "high", "weights")
