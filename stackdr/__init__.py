@@ -13,21 +13,21 @@ flows one way, lower layers never import higher ones):
 - :mod:`stackdr.cli`: the command line.
 """
 
-__version__ = "0.1.0"
-
-from stackdr.core import Component, Target, get_target  # noqa: E402
-from stackdr.errors import InputError, LearnerError, PositivityWarning, StackdrError  # noqa: E402
-from stackdr.estimation import BlendEstimator, BlendResult  # noqa: E402
-from stackdr.io import (  # noqa: E402
+from stackdr._version import __version__
+from stackdr.core import Component, Target, get_target
+from stackdr.errors import InputError, LearnerError, PositivityWarning, StackdrError
+from stackdr.estimation import BlendEstimator, BlendResult
+from stackdr.io import (
     BlendedClassifier,
     BlendedRegressor,
     blended_models,
     blended_nuisances,
     read_results_json,
 )
-from stackdr.studies import make_replicate, register_design, run_study  # noqa: E402
+from stackdr.studies import make_replicate, register_design, run_study
 
 __all__ = [
+    "__version__",
     "BlendEstimator",
     "BlendResult",
     "BlendedClassifier",

@@ -568,7 +568,7 @@ def _lp_crash(*args, **kwargs):
     ids=["LP solver reports failure", "LP solver raises"],
 )
 def test_failed_lp_falls_back_to_a_vertex(monkeypatch, replacement, message):
-    monkeypatch.setattr("stackdr.search._solvers._highs_range_lp", replacement)
+    monkeypatch.setattr("stackdr.search._range_lp.highs_range_lp", replacement)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         result = fit(tie_break=False)

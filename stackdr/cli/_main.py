@@ -22,7 +22,7 @@ from pathlib import Path
 
 import pandas as pd
 
-from stackdr import __version__
+from stackdr._version import __version__
 from stackdr.cli._common import (
     CLI_DEFAULTS,
     CLI_REQUIRED,

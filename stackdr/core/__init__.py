@@ -29,17 +29,19 @@ from stackdr.core._risks import (
     value_range,
     weight_sensitivity,
 )
+from stackdr.core._simplex_qp import simplex_qp
 from stackdr.core._stacking import (
     StackResult,
     log_losses,
-    logloss_moment_features,
     logloss_stack,
+    nnls_stack,
+    squared_error_losses,
+)
+from stackdr.core._stacking_batched import (
+    logloss_moment_features,
     logloss_stack_batch,
     logloss_stack_from_moments,
-    nnls_stack,
     nnls_stack_from_moments,
-    simplex_qp,
-    squared_error_losses,
 )
 from stackdr.core._targets import TARGET_NAMES, Component, Target, get_target
 

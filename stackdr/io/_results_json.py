@@ -19,7 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from scipy.special import expit, logit
 
-from stackdr import __version__
+from stackdr._version import __version__
 from stackdr.core import blended_weight_side
 from stackdr.errors import InputError
 from stackdr.estimation import CAUTION, BlendResult, phi_function

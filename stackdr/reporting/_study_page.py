@@ -12,8 +12,6 @@ import base64
 import html
 import json
 import math
-import sqlite3
-from contextlib import closing
 from pathlib import Path
 
 import numpy as np
@@ -29,7 +27,7 @@ from stackdr.reporting._figures import (
     render_png,
 )
 from stackdr.search import ESTIMATOR_ORDER
-from stackdr.studies import read_results, summarise_study
+from stackdr.studies import read_results, read_study_record, summarise_study
 
 # (summary column, its MC SE column, header) in display order.
 MEASURES = (
@@ -155,16 +153,6 @@ figure { margin: 1em 0; } figcaption { font-size: 0.85em; color: #555; }
 pre { background: #f6f6f6; padding: 0.6em; font-size: 0.8em; overflow-x: auto; }
 .note { font-size: 0.9em; color: #444; }
 """
-
-
-def read_study_record(path: str | Path) -> dict:
-    """The ``study`` table of a study file (seed, designs, settings, format, creation time),
-    values decoded from JSON."""
-    uri = Path(path).resolve().as_uri() + "?mode=ro"
-    with closing(sqlite3.connect(uri, uri=True)) as conn:
-        return {
-            key: json.loads(value) for key, value in conn.execute("SELECT key, value FROM study")
-        }
 
 
 def _level(record: dict) -> float:

@@ -17,6 +17,10 @@ from stackdr.search._comparisons import (
     active_comparisons,
     comparison_weights,
 )
+from stackdr.search._lattice import lattice_resolution, lattice_size, simplex_lattice
+from stackdr.search._polish import grid_refine
+from stackdr.search._range_lp import minimise_range_cvxpy, minimise_range_lp
+from stackdr.search._records import SolveResult, WeightSearch
 from stackdr.search._selection import (
     CRITERIA,
     SearchSettings,
@@ -25,19 +29,8 @@ from stackdr.search._selection import (
     pure_weights,
     run_search,
 )
-from stackdr.search._solvers import (
-    SolveResult,
-    WeightSearch,
-    grid_refine,
-    lattice_resolution,
-    lattice_size,
-    minimise_range_cvxpy,
-    minimise_range_lp,
-    search_weights,
-    simplex_lattice,
-    tie_break_general,
-    tie_break_range,
-)
+from stackdr.search._tie_break import tie_break_general, tie_break_range
+from stackdr.search._weights import search_weights
 
 __all__ = [
     "BEST",

@@ -10,7 +10,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from stackdr.core import minimax_risk, mixed_risk
-from stackdr.search._solvers import search_weights
+from stackdr.search._weights import search_weights
 
 CRITERIA = ("mixed", "minimax")
 

@@ -2,14 +2,9 @@
 its summaries; and the built-in demo scenario."""
 
 from stackdr.studies._demo import DESCRIPTION, TRUE_EFFECT, simulate_demo
-from stackdr.studies._designs import (
-    Design,
-    DesignData,
-    get_design,
-    kang_schafer_transform,
-    list_designs,
-    register_design,
-)
+from stackdr.studies._design_library import kang_schafer_transform
+from stackdr.studies._design_registry import get_design, list_designs, register_design
+from stackdr.studies._designs import Design, DesignData
 from stackdr.studies._replicate import (
     ORACLE,
     STUDY_SETTINGS,
@@ -19,16 +14,17 @@ from stackdr.studies._replicate import (
     oracle_row,
     simulate_replicate,
 )
-from stackdr.studies._runner import (
-    MixedCodeWarning,
-    ReplicateError,
+from stackdr.studies._runner import ReplicateError, replicate_seeds, run_study
+from stackdr.studies._store import (
     StudyCodeError,
     StudyExistsError,
     StudySettingsError,
+    read_study_record,
+)
+from stackdr.studies._summaries import (
+    MixedCodeWarning,
     paired_differences,
     read_results,
-    replicate_seeds,
-    run_study,
     summarise_study,
 )
 
@@ -53,6 +49,7 @@ __all__ = [
     "oracle_row",
     "paired_differences",
     "read_results",
+    "read_study_record",
     "register_design",
     "replicate_seeds",
     "run_study",

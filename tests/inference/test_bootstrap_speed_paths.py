@@ -19,8 +19,7 @@ from stackdr.inference._reweighting import (
     draw_row_weights,
     replicate_generators,
 )
-from stackdr.search import SearchSettings, lattice_resolution, run_search, simplex_lattice
-from stackdr.search import _solvers as solvers
+from stackdr.search import SearchSettings, _polish, lattice_resolution, run_search, simplex_lattice
 from tests.inference import test_inference
 
 # The small ATE fit of the bootstrap tests (three propensity, two outcome learners).
@@ -99,7 +98,7 @@ def test_replicate_search_matches_slow_reference(small_fit, monkeypatch, blend, 
         Psi = pair_table(inp, w)
         fast_phi = None if blend == "riesz" else _weighted_phi([inp], blend, w, lattice, col)
         fast.append(search(Psi, fast_phi))
-    monkeypatch.setattr(solvers, "_highs_lp", _linprog_model(solvers._highs_lp))
+    monkeypatch.setattr(_polish, "highs_lp", _linprog_model(_polish.highs_lp))
     for col in range(W.shape[1]):
         w = W[:, col]
 

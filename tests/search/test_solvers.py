@@ -21,10 +21,11 @@ from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 from scipy.optimize import minimize
 
-import stackdr.search._solvers as solvers
 from stackdr.core import pairwise_gaps
 from stackdr.errors import InputError
 from stackdr.search import (
+    _external_solvers,
+    _range_lp,
     grid_refine,
     lattice_size,
     minimise_range_cvxpy,
@@ -111,7 +112,7 @@ def test_lp_failure_falls_back_to_best_vertex(monkeypatch, rng):
     def failing_lp(*args, **kwargs):
         return False, None, "numerical difficulties", 0
 
-    monkeypatch.setattr(solvers, "_highs_range_lp", failing_lp)
+    monkeypatch.setattr(_range_lp, "highs_range_lp", failing_lp)
     with pytest.warns(RuntimeWarning, match="numerical difficulties"):
         res = minimise_range_lp(V)
     best = int(np.argmin(np.ptp(V, axis=1)))
@@ -300,7 +301,7 @@ def cvxpy_projection(V, anchor, bound):
         cp.Minimize(cp.sum_squares(a - anchor)),
         [cp.sum(a) == 1, values <= upper, values >= lower, upper - lower <= bound / spread],
     )
-    problem.solve(solver=cp.CLARABEL, **solvers._CLARABEL_TIGHT)
+    problem.solve(solver=cp.CLARABEL, **_external_solvers.CLARABEL_TIGHT)
     assert problem.status == cp.OPTIMAL, problem.status
     return a.value
 
@@ -389,7 +390,7 @@ def reporting_solver(statuses):
 def test_tie_break_maps_clarabel_statuses(monkeypatch, rng, statuses, expected):
     V, anchor, pure, tolerance = tie_break_problem(rng, 5, 4, 0.4)
     exact = tie_break_range(V, pure, tolerance, anchor)
-    monkeypatch.setattr(solvers.clarabel, "DefaultSolver", reporting_solver(statuses))
+    monkeypatch.setattr(clarabel, "DefaultSolver", reporting_solver(statuses))
     if expected == "fallback":
         last = statuses[-1]
         with pytest.warns(RuntimeWarning, match=f"tie-break failed.*{last}"):

@@ -16,7 +16,8 @@ from stackdr.studies import (
     list_designs,
     register_design,
 )
-from stackdr.studies import _designs as designs
+from stackdr.studies import _design_library as library
+from stackdr.studies import _design_registry as registry
 
 Z_CRIT = 4.0  # a 4-SE band: false alarm probability about 6e-5 per check
 
@@ -176,7 +177,7 @@ def test_sparse_design_construction():
     x = data.frame[data.covariates].to_numpy()
     a, y = _roles(data)
     assert x.shape[1] == 50 and data.treatment == "A"
-    lo, hi = designs.SPARSE_PROPENSITY_BOUNDS
+    lo, hi = library.SPARSE_PROPENSITY_BOUNDS
     assert lo <= data.true_propensity.min() and data.true_propensity.max() <= hi
     # Stationary AR(1) blocks of 5: corr 0.6 at lag 1, 0.36 at lag 2, zero across blocks.
     corr = np.corrcoef(x[:, :10], rowvar=False)
@@ -198,14 +199,14 @@ def test_sparse_inactive_covariates_do_not_matter():
     shuffled = np.random.default_rng(2).standard_normal((200, 50))
     shuffled[:, active] = x[:, active]
     for function in (
-        designs._sparse_propensity,
-        designs._sparse_control_mean,
-        designs._sparse_effect,
+        library._sparse_propensity,
+        library._sparse_control_mean,
+        library._sparse_effect,
     ):
         np.testing.assert_array_equal(function(x), function(shuffled))
     changed = x.copy()
     changed[:, 10] += 1
-    assert not np.allclose(designs._sparse_propensity(x), designs._sparse_propensity(changed))
+    assert not np.allclose(library._sparse_propensity(x), library._sparse_propensity(changed))
 
 
 @pytest.mark.parametrize("name", list_designs())
@@ -237,7 +238,7 @@ def test_simulate_validates_arguments():
 
 @pytest.fixture()
 def private_registry(monkeypatch):
-    monkeypatch.setattr(designs, "_REGISTRY", dict(designs._REGISTRY))
+    monkeypatch.setattr(registry, "_REGISTRY", dict(registry._REGISTRY))
 
 
 def test_register_design_tuple_form(private_registry):
@@ -259,7 +260,7 @@ def test_register_design_tuple_form(private_registry):
 
 def test_register_design_data_form_and_errors(private_registry):
     def reuse_lunceford(n, rng):
-        return designs.simulate_lunceford_davidian(n, rng)
+        return library.simulate_lunceford_davidian(n, rng)
 
     register_design("ld-copy", reuse_lunceford, "ate", "copy")
     a = get_design("ld-copy").simulate(100, np.random.default_rng(9))

@@ -27,13 +27,15 @@ from stackdr.studies import (
     StudyCodeError,
     StudyExistsError,
     StudySettingsError,
+    _store,
+    _summaries,
     paired_differences,
     read_results,
+    read_study_record,
     replicate_seeds,
     run_study,
     summarise_study,
 )
-from stackdr.studies import _runner as study
 
 DESIGNS = ["kang-schafer", "lunceford-davidian"]
 NS = [120, 240]
@@ -226,9 +228,27 @@ def test_resume_on_missing_file_starts_study_and_foreign_files_are_refused(tmp_p
         conn.execute("CREATE TABLE t (x)")
     with pytest.raises(InputError, match="not a study file"):
         run_study(foreign, "sparse", 60, 1, difference_and_ipw, resume=True, progress=False)
+    with pytest.raises(InputError, match="not a study file"):
+        read_study_record(foreign)
     with pytest.raises(FileNotFoundError):
         read_results(tmp_path / "absent.db")
+    with pytest.raises(FileNotFoundError):
+        read_study_record(tmp_path / "absent.db")
     assert not (tmp_path / "absent.db").exists()
+
+
+def test_study_record_holds_the_stored_settings(tmp_path):
+    path = tmp_path / "study.db"
+    run_study(
+        path, "kang-schafer", 50, 1, difference_and_ipw, seed=3, settings={"a": 1}, progress=False
+    )
+    record = read_study_record(path)
+    assert (record["seed"], record["designs"], record["settings"]) == (
+        3,
+        {"kang-schafer": "mean1"},
+        {"a": 1},
+    )
+    assert record["format"] == "stackdr-study/1" and record["code"] == _store.code_fingerprint()
 
 
 def test_replicate_seeds_are_deterministic_and_distinct():
@@ -354,8 +374,8 @@ def test_bootstrap_median_se_matches_asymptotic_formula():
     m = 0.6744897501960817
     density = 2 * np.exp(-(m**2) / 2) / np.sqrt(2 * np.pi)
     expected = 1 / (2 * density * np.sqrt(r))
-    got = study._bootstrap_median_se(values)
-    assert got == study._bootstrap_median_se(values)  # fixed bootstrap seed
+    got = _summaries._bootstrap_median_se(values)
+    assert got == _summaries._bootstrap_median_se(values)  # fixed bootstrap seed
     assert abs(got / expected - 1) < 0.2
 
 
@@ -407,10 +427,10 @@ def _extend(path, **kwargs):
 def test_resuming_with_different_code_is_refused_unless_allowed(tmp_path, monkeypatch):
     # Replicates of one summary table should come from one version of the estimator.
     path = tmp_path / "study.db"
-    first = study.code_fingerprint()
-    assert first.startswith(stackdr_version + "+") and first == study.code_fingerprint()
+    first = _store.code_fingerprint()
+    assert first.startswith(stackdr_version + "+") and first == _store.code_fingerprint()
     _study(path)
-    monkeypatch.setattr(study, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
+    monkeypatch.setattr(_store, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
     with pytest.raises(StudyCodeError, match=rf"started by stackdr {re.escape(first)}"):
         _extend(path)
     assert _count_done(path) == len(DESIGNS) * len(NS) * REPS  # nothing written
@@ -438,7 +458,7 @@ def test_files_from_before_code_was_recorded(tmp_path):
         _extend(path)
     _extend(path, allow_code_change=True)
     codes = read_results(path)["code"]
-    assert codes.isna().sum() > 0 and (codes == study.code_fingerprint()).sum() > 0
+    assert codes.isna().sum() > 0 and (codes == _store.code_fingerprint()).sum() > 0
     with pytest.warns(MixedCodeWarning, match="unrecorded"):
         summarise_study(path)
 
@@ -464,7 +484,7 @@ def test_cli_refuses_a_code_change_with_one_line(tmp_path, monkeypatch, capsys):
         "--no-progress",
     ]
     assert main(args) == 0
-    monkeypatch.setattr(study, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
+    monkeypatch.setattr(_store, "code_fingerprint", lambda: "9.9.9+feedbeefcafe")
     capsys.readouterr()
     assert main([*args[:6], "2", *args[7:], "--resume"]) == 2
     err = capsys.readouterr().err.strip().splitlines()
