@@ -19,21 +19,8 @@ from stackdr.cli._main import main, read_table
 from stackdr.estimation import CATALOGUE, CAUTION
 from stackdr.io import read_results_json
 from stackdr.studies import simulate_demo
+from tests.helpers import QUICK
 
-QUICK = """
-[settings]
-folds = 3
-bootstrap = 10
-progress = false
-
-[propensity.logistic]
-[propensity.constant]
-learner = "constant-classifier"
-
-[outcome.linear]
-[outcome.constant]
-learner = "constant-regressor"
-"""
 # A continuous treatment needs regressions as propensity learners.
 CONTINUOUS = QUICK.replace("logistic]", "linear]").replace(
     "constant-classifier", "constant-regressor"

@@ -23,9 +23,7 @@ import pytest
 
 from stackdr.cli import main
 from stackdr.io import read_results_json
-from tests.cli.test_cli import QUICK
-from tests.helpers import confounded_data
-from tests.test_faults import estimate_args
+from tests.helpers import QUICK, QUICK_NO_BOOTSTRAP, confounded_data, estimate_args
 
 # Learners slow enough that a run is still fitting when the signal arrives.
 SLOW = """
@@ -55,7 +53,7 @@ def root(tmp_path_factory) -> Path:
     frame.to_csv(root / "data.csv", index=False)
     (root / "slow.toml").write_text(SLOW)
     (root / "long.toml").write_text(LONG_BOOTSTRAP)
-    (root / "quick.toml").write_text(QUICK.replace("bootstrap = 10", "bootstrap = 0"))
+    (root / "quick.toml").write_text(QUICK_NO_BOOTSTRAP)
     return root
 
 

@@ -21,10 +21,6 @@ from stackdr.inference._reweighting import (
 )
 from stackdr.search import SearchSettings, lattice_resolution, run_search, simplex_lattice
 from stackdr.search import _solvers as solvers
-from tests.inference import test_inference
-
-# The small ATE fit of the bootstrap tests (three propensity, two outcome learners).
-small_fit = test_inference.small_fit
 
 
 def _row_weights(n: int, count: int) -> np.ndarray:

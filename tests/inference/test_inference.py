@@ -64,19 +64,6 @@ def test_plain_mean_matches_scipy_bootstrap():
     assert res.bootstrap.standard_errors["target-aimed stacking"] == pytest.approx(sd, rel=0.08)
 
 
-@pytest.fixture(scope="module")
-def small_fit():
-    X, A, Y, _ = confounded_data(np.random.default_rng(21), 500)
-    prop = {
-        "logit": LogisticRegression(),
-        "flat": DummyClassifier(strategy="prior"),
-        "sharp": LogisticRegression(C=100.0),
-    }
-    outc = {"ols": LinearRegression(), "mean": DummyRegressor()}
-    est = BlendEstimator("ate", prop, outc, bootstrap=0, seed=7)
-    return est, est.fit(X, A, Y)
-
-
 def test_bootstrap_zero_disables(small_fit):
     _, res = small_fit
     assert res.bootstrap is None and res.interval_method == "wald"
