@@ -1,4 +1,8 @@
-"""Fixtures shared by several test modules; plain helpers live in ``tests/helpers.py``."""
+"""Fixtures shared by several test modules; plain helpers live in ``tests/helpers.py``.
+
+Long-running tests carry ``@pytest.mark.slow``; ``make test`` runs them too, and
+``pytest -m "not slow"`` skips them for a quick check.
+"""
 
 import os
 

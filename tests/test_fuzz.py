@@ -183,6 +183,7 @@ def csv_texts(draw) -> tuple[bytes, str]:
     return bom + buffer.getvalue().encode("utf-8"), target
 
 
+@pytest.mark.slow
 @PIPELINE
 @given(case=csv_texts())
 def test_random_small_csvs(workspace, case):
@@ -344,6 +345,7 @@ FLAG_VALUES = ["2", "0.5", "logit", "minimax", "bayesian", "x1", "a", "y", "ate"
 FLAG_VALUES += ["-1", "0", "1", "nan", "inf", "1e9", "", "--", "\u00e9", "<b>"]
 
 
+@pytest.mark.slow
 @settings(PIPELINE, max_examples=8 * SCALE)
 @given(
     pairs=st.lists(
@@ -394,6 +396,7 @@ def _places(value, path=()) -> list:
 DAMAGE = [None, "x", -1, 0, 1e308, [], {}, True, [1, 2], "NaN", 3.5, {"a": 1}]
 
 
+@pytest.mark.slow
 @settings(PIPELINE, max_examples=16 * SCALE)
 @given(
     edits=st.lists(
@@ -432,6 +435,7 @@ def test_report_from_damaged_results(workspace, saved_results, edits):
 # ----------------------------------------------------------------------------- as processes
 
 
+@pytest.mark.slow
 def test_garbage_as_real_processes(tmp_path):
     """Two damaged inputs as the shell sees them: exit status 2, one stderr line, and nothing
     left in the process's temporary folder."""

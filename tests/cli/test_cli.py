@@ -185,6 +185,7 @@ def test_learners_lists_the_catalogue(capsys):
     assert "n_estimators=100" in out
 
 
+@pytest.mark.slow
 def test_demo_command(tmp_path, capsys):
     with threadpool_limits(1):
         code, out, _ = run(
@@ -319,6 +320,7 @@ def test_user_mistakes_in_process(bad, case, capsys):
 SUBPROCESS_CASES = ["missing file", "unknown target", "unreadable config", "existing results"]
 
 
+@pytest.mark.slow
 def test_user_mistakes_as_processes(bad, workspace):
     root, _ = workspace
     env = {**os.environ, "OMP_NUM_THREADS": "1"}

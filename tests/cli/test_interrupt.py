@@ -123,6 +123,7 @@ def assert_clean_interrupt(code: int, stderr: str, out: Path, marker: str) -> No
     assert processes_with(marker) == [], "worker processes outlived the interrupted run"
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("jobs", [1, 2])
 def test_ctrl_c_while_fitting(root, jobs):
     out = root / f"fitting-{jobs}"
@@ -133,6 +134,7 @@ def test_ctrl_c_while_fitting(root, jobs):
     assert_clean_interrupt(code, stderr, out, marker)
 
 
+@pytest.mark.slow
 def test_ctrl_c_during_the_bootstrap(root):
     out = root / "bootstrap"
     marker = uuid.uuid4().hex

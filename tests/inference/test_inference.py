@@ -28,6 +28,7 @@ PLAIN_MEAN = Target(
 )
 
 
+@pytest.mark.slow
 def test_plain_mean_matches_scipy_bootstrap():
     # Reference: scipy.stats.bootstrap(method="percentile") on the same data. Both are Monte
     # Carlo approximations of the same bootstrap distribution of the mean; with B = 5000 the SE

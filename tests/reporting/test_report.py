@@ -113,6 +113,7 @@ def test_user_text_appears_only_escaped(report_dir):
     assert f"<title>Study {html.escape(SCRIPT)} {html.escape(SHELL)}</title>" in page
 
 
+@pytest.mark.slow
 def test_rebuild_from_saved_json_is_byte_identical(results, report_dir, tmp_path):
     path = write_results_json(results, tmp_path / "results.json")
     again = tmp_path / "again"
