@@ -15,6 +15,8 @@ $(STAMP): pyproject.toml
 demo: $(STAMP)
 	$(BIN)/stackdr demo
 
+# Every test, the slow-marked ones too, and the docstring examples of the package.
+# A quick check without the slow tests: $(BIN)/python -m pytest -m "not slow"
 test: $(STAMP)
 	$(BIN)/python -m pytest
 
