@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: demo test lint bench clean
+.PHONY: demo test lint bench bench-quick clean
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -23,8 +23,13 @@ test: $(STAMP)
 lint: $(STAMP)
 	$(BIN)/ruff check stackdr tests benchmarks examples
 
+# The benchmark scripts (not the Monte Carlo studies); bench-quick at small sizes, its JSON
+# files in a scratch folder.
 bench: $(STAMP)
 	$(BIN)/python benchmarks/run_all.py
+
+bench-quick: $(STAMP)
+	$(BIN)/python benchmarks/run_all.py --quick
 
 clean:
 	rm -rf $(VENV) build *.egg-info
