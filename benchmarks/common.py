@@ -3,12 +3,17 @@
 from __future__ import annotations
 
 import json
+import os
 import platform
 import time
 import tracemalloc
 from pathlib import Path
 
-RESULTS = Path(__file__).resolve().parent / "results"
+# Where the JSON files go: benchmarks/results, or the folder named by STACKDR_BENCH_RESULTS
+# (run_all.py --quick points it elsewhere so small runs do not replace the recorded numbers).
+RESULTS = Path(
+    os.environ.get("STACKDR_BENCH_RESULTS") or Path(__file__).resolve().parent / "results"
+)
 
 
 def measure(fn, *args, **kwargs):

@@ -1,8 +1,25 @@
-"""Small shared test tools: learners that return known functions, and simple simulated data."""
+"""Shared test tools: learners that return known functions, simple simulated data, hypothesis
+strategies for pair tables and simplex points, a fit with hostile learner names, and the quick
+command-line configuration with the arguments of ``stackdr estimate``.
+
+Test modules import shared things from here (fixtures live in ``tests/conftest.py``), never from
+one another.
+"""
+
+from pathlib import Path
 
 import numpy as np
+import pandas as pd
+from hypothesis import strategies as st
+from hypothesis.extra.numpy import arrays
 from scipy.special import expit
 from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin
+from sklearn.dummy import DummyClassifier, DummyRegressor
+from sklearn.linear_model import LinearRegression, LogisticRegression
+
+from stackdr import BlendEstimator
+
+# ----------------------------------------------------------------------------- learners and data
 
 
 class KnownRegressor(RegressorMixin, BaseEstimator):
@@ -43,3 +60,89 @@ def confounded_data(rng, n, effect=2.0):
     A = rng.binomial(1, pi)
     Y = effect * A + 3 * X[:, 0] + X[:, 1] + X[:, 2] ** 2 + rng.normal(size=n)
     return X, A, Y, pi
+
+
+# ----------------------------------------------------------------------------- hypothesis
+
+finite = st.floats(-50, 50, allow_nan=False, allow_infinity=False)
+
+
+@st.composite
+def tables(draw, max_k=6, elements=finite):
+    """Pair tables (or value matrices) of shape up to max_k x max_k."""
+    k1 = draw(st.integers(1, max_k))
+    k2 = draw(st.integers(1, max_k))
+    return draw(arrays(float, (k1, k2), elements=elements))
+
+
+@st.composite
+def simplex_points(draw, k):
+    raw = draw(arrays(float, (k,), elements=st.floats(0.0, 1.0)))
+    raw = raw + 1e-3  # keeps the normalising sum away from zero
+    return raw / raw.sum()
+
+
+# ----------------------------------------------------------------------------- hostile names
+
+SCRIPT = "<script>alert(1)</script>"
+SHELL = '"; rm -rf /'
+MATH = r"cost $\undefinedcmd$"
+
+
+def hostile_fit(bootstrap: int = 50, seed: int = 3):
+    """A quick ATE fit whose names are hostile user text: three propensity learners (one named
+    like a script tag, one with an invalid mathtext command) and two outcome learners."""
+    rng = np.random.default_rng(seed)
+    X, A, Y, _ = confounded_data(rng, 400)
+    frame = pd.DataFrame({SCRIPT: X[:, 0], "x2": X[:, 1], MATH: X[:, 2], "treated": A, SHELL: Y})
+    propensity = {
+        SCRIPT: LogisticRegression(),
+        "constant": DummyClassifier(strategy="prior"),
+        MATH: LogisticRegression(C=0.05),
+    }
+    outcome = {SHELL: LinearRegression(), "mean": DummyRegressor()}
+    estimator = BlendEstimator(
+        "ate", propensity, outcome, folds=4, bootstrap=bootstrap, seed=seed, n_jobs=1
+    )
+    return estimator.fit(frame, "treated", SHELL)
+
+
+# ----------------------------------------------------------------------------- command line
+
+# Fast learners (logistic / OLS / constant), three folds and a ten-replicate bootstrap.
+QUICK = """
+[settings]
+folds = 3
+bootstrap = 10
+progress = false
+
+[propensity.logistic]
+[propensity.constant]
+learner = "constant-classifier"
+
+[outcome.linear]
+[outcome.constant]
+learner = "constant-regressor"
+"""
+# The same without a bootstrap.
+QUICK_NO_BOOTSTRAP = QUICK.replace("bootstrap = 10", "bootstrap = 0")
+
+
+def estimate_args(
+    root: Path, data: str, out: str, *, config: str = "quick.toml", target: str = "ate"
+) -> list:
+    """``stackdr estimate`` arguments for files in ``root`` (treatment a, outcome y)."""
+    return [
+        "estimate",
+        root / data,
+        "--treatment",
+        "a",
+        "--outcome",
+        "y",
+        "--target",
+        target,
+        "--config",
+        root / config,
+        "--out",
+        root / out,
+    ]

@@ -10,6 +10,8 @@ import pytest
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "examples"
 SCRIPTS = ("demo_scenario.py", "nsw_experimental.py", "plug_in_nuisances.py")
+# Three interpreters fitting real learner libraries.
+pytestmark = pytest.mark.slow
 
 
 @pytest.fixture(scope="module")

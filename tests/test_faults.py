@@ -30,8 +30,7 @@ from stackdr import BlendEstimator
 from stackdr.cli import main
 from stackdr.errors import InputError, LearnerError, PositivityWarning
 from stackdr.io import load_config, read_results_json
-from tests.cli.test_cli import QUICK as CLI_QUICK
-from tests.helpers import KnownRegressor, confounded_data
+from tests.helpers import QUICK_NO_BOOTSTRAP, KnownRegressor, confounded_data, estimate_args
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 
@@ -597,27 +596,27 @@ def test_outcome_scale_does_not_change_the_relative_result(baseline, scale):
 
 # ----------------------------------------------------------------------------- configuration
 
-# The command-line tests' quick libraries, without a bootstrap.
-QUICK = CLI_QUICK.replace("bootstrap = 10", "bootstrap = 0")
-
 CONFIG_FAULTS = {
     "config: unknown key": (
-        QUICK.replace("folds = 3", "folds = 3\nfoldz = 2"),
+        QUICK_NO_BOOTSTRAP.replace("folds = 3", "folds = 3\nfoldz = 2"),
         "unknown setting 'foldz' (did you mean 'folds'?)",
     ),
     "config: wrong type": (
-        QUICK.replace("folds = 3", 'folds = "3"'),
+        QUICK_NO_BOOTSTRAP.replace("folds = 3", 'folds = "3"'),
         "setting 'folds' must be a whole number, got '3'",
     ),
     "config: unknown learner name": (
-        QUICK.replace("[outcome.linear]", '[outcome.linear]\nlearner = "linnear"'),
+        QUICK_NO_BOOTSTRAP.replace("[outcome.linear]", '[outcome.linear]\nlearner = "linnear"'),
         "[outcome.linear]: unknown learner 'linnear' (did you mean 'linear'?)",
     ),
     "config: unknown learner parameter": (
-        QUICK.replace("[outcome.linear]", "[outcome.linear]\nalpha = 3"),
+        QUICK_NO_BOOTSTRAP.replace("[outcome.linear]", "[outcome.linear]\nalpha = 3"),
         "learner 'linear' has no parameter 'alpha'",
     ),
-    "config: unknown section": (QUICK + "\n[extras]\nx = 1\n", "unknown section [extras]"),
+    "config: unknown section": (
+        QUICK_NO_BOOTSTRAP + "\n[extras]\nx = 1\n",
+        "unknown section [extras]",
+    ),
     "config: TOML syntax error": ("[settings\nfolds = 3\n", "is not valid TOML"),
     "config: not UTF-8": ("[settings]\n# caf\xe9\n", "cannot read config file"),
 }
@@ -636,7 +635,7 @@ def test_config_faults(tmp_path, case):
 def test_config_parameter_rejected_by_the_learner_drops_it(tmp_path):
     # The catalogue checks names and types when the file is read; a value out of the learner's
     # range (here n_neighbors < 1) surfaces when it is fitted, naming the learner and value.
-    body = QUICK.replace('"constant-regressor"', '"knn-regressor"\nn_neighbors = -3')
+    body = QUICK_NO_BOOTSTRAP.replace('"constant-regressor"', '"knn-regressor"\nn_neighbors = -3')
     (tmp_path / "run.toml").write_text(body)
     config = load_config(tmp_path / "run.toml")
     message = "outcome learner 'constant' failed and was dropped: InvalidParameterError"
@@ -668,28 +667,8 @@ def files(tmp_path_factory):
     frame.assign(y=np.where(frame.index == 4, np.inf, frame.y)).to_csv(
         root / "inf.csv", index=False
     )
-    (root / "quick.toml").write_text(QUICK)
+    (root / "quick.toml").write_text(QUICK_NO_BOOTSTRAP)
     return root
-
-
-def estimate_args(
-    root: Path, data: str, out: str, *, config: str = "quick.toml", target: str = "ate"
-) -> list:
-    """``stackdr estimate`` arguments for files in ``root`` (treatment a, outcome y)."""
-    return [
-        "estimate",
-        root / data,
-        "--treatment",
-        "a",
-        "--outcome",
-        "y",
-        "--target",
-        target,
-        "--config",
-        root / config,
-        "--out",
-        root / out,
-    ]
 
 
 CSV_ERRORS = {

@@ -32,8 +32,8 @@ from stackdr.cli import main
 from stackdr.errors import InputError
 from stackdr.estimation import BlendEstimator
 from stackdr.io import estimator_kwargs, load_config, resolve_settings
-from tests.cli.test_cli import QUICK
-from tests.test_faults import estimate_args as fault_args
+from tests import helpers
+from tests.helpers import QUICK
 
 # Whole pipeline runs (report figures included) cost about two seconds each: few examples, no
 # shrinking. Cheap inputs that fail in validation get more. STACKDR_FUZZ_SCALE=10 (say) runs ten
@@ -133,7 +133,7 @@ def workspace(tmp_path, monkeypatch):
 
 def estimate_args(data: str, out: str, target: str = "ate", config: str = "quick.toml") -> list:
     """Arguments relative to the working folder."""
-    return fault_args(Path(), data, out, config=config, target=target)
+    return helpers.estimate_args(Path(), data, out, config=config, target=target)
 
 
 # ----------------------------------------------------------------------------- random CSVs
@@ -183,6 +183,7 @@ def csv_texts(draw) -> tuple[bytes, str]:
     return bom + buffer.getvalue().encode("utf-8"), target
 
 
+@pytest.mark.slow
 @PIPELINE
 @given(case=csv_texts())
 def test_random_small_csvs(workspace, case):
@@ -344,6 +345,7 @@ FLAG_VALUES = ["2", "0.5", "logit", "minimax", "bayesian", "x1", "a", "y", "ate"
 FLAG_VALUES += ["-1", "0", "1", "nan", "inf", "1e9", "", "--", "\u00e9", "<b>"]
 
 
+@pytest.mark.slow
 @settings(PIPELINE, max_examples=8 * SCALE)
 @given(
     pairs=st.lists(
@@ -375,7 +377,7 @@ def saved_results(tmp_path_factory) -> dict:
         "a,y,x1\n" + "".join(f"{i % 2},{(i * 7) % 5 + i % 2},{(i * 3) % 7}\n" for i in range(30))
     )
     with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(io.StringIO()):
-        assert main([str(a) for a in fault_args(root, "data.csv", "out")]) == 0
+        assert main([str(a) for a in helpers.estimate_args(root, "data.csv", "out")]) == 0
     return json.loads((root / "out" / "results.json").read_text(encoding="utf-8"))
 
 
@@ -394,6 +396,7 @@ def _places(value, path=()) -> list:
 DAMAGE = [None, "x", -1, 0, 1e308, [], {}, True, [1, 2], "NaN", 3.5, {"a": 1}]
 
 
+@pytest.mark.slow
 @settings(PIPELINE, max_examples=16 * SCALE)
 @given(
     edits=st.lists(
@@ -432,6 +435,7 @@ def test_report_from_damaged_results(workspace, saved_results, edits):
 # ----------------------------------------------------------------------------- as processes
 
 
+@pytest.mark.slow
 def test_garbage_as_real_processes(tmp_path):
     """Two damaged inputs as the shell sees them: exit status 2, one stderr line, and nothing
     left in the process's temporary folder."""

@@ -82,7 +82,29 @@ def _weights(inp: PairInputs, row_weights: np.ndarray | None) -> np.ndarray:
 
 
 def pair_table(inp: PairInputs, row_weights: np.ndarray | None = None) -> np.ndarray:
-    """Psi (K1 x K2) by matrix products; ``row_weights`` gives a weighted (bootstrap) version."""
+    """Psi (K1 x K2) by matrix products; ``row_weights`` gives a weighted (bootstrap) version.
+
+    Examples
+    --------
+    An ATE on four rows with two propensity learners (a constant 0.5 and one that varies) and
+    two outcome learners (zero, which gives the inverse-probability-weighting estimate, and the
+    arm means). The cross-fit holds predictions shaped (repetitions, rows, learners).
+
+    >>> from types import SimpleNamespace
+    >>> from stackdr.core import get_target, pair_inputs
+    >>> A = np.array([1.0, 1.0, 0.0, 0.0])
+    >>> Y = np.array([3.0, 5.0, 1.0, 2.0])
+    >>> pi = np.array([[0.5, 0.8], [0.5, 0.6], [0.5, 0.4], [0.5, 0.2]])
+    >>> mu1 = np.array([[0.0, 4.0]] * 4)
+    >>> mu0 = np.array([[0.0, 1.5]] * 4)
+    >>> crossfit = SimpleNamespace(
+    ...     propensity=pi[None],
+    ...     outcome={"mu1": mu1[None], "mu0": mu0[None]},
+    ...     propensity_kind="classifier",
+    ... )
+    >>> pair_table(pair_inputs(get_target("ate"), crossfit, A, Y)).round(4).tolist()
+    [[2.5, 2.5], [1.9792, 2.6562]]
+    """
     w = _weights(inp, row_weights)
     K1, K2 = inp.shape
     total = np.zeros((K1, K2))

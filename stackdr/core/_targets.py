@@ -229,7 +229,22 @@ TARGET_NAMES = tuple(_BUILT_IN)
 
 
 def get_target(target: str | Target) -> Target:
-    """Return a built-in target by name, or pass a Target through."""
+    """Return a built-in target by name, or pass a Target through.
+
+    Examples
+    --------
+    >>> att = get_target("att")
+    >>> att.name, att.outcome_heads
+    ('att', ('mu0',))
+    >>> att.description
+    'average treatment effect on the treated E[Y(1) - Y(0) | A = 1]'
+    >>> get_target(att) is att
+    True
+    >>> get_target("atx")
+    Traceback (most recent call last):
+    ...
+    stackdr.errors.InputError: unknown target 'atx'; choose one of mean1, mean0, ate, att, cov
+    """
     if isinstance(target, Target):
         return target
     if isinstance(target, str) and target in _BUILT_IN:

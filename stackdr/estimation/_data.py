@@ -172,6 +172,27 @@ def prepare_data(
     Returns
     -------
     PreparedData
+
+    Examples
+    --------
+    Non-numeric covariates are one-hot encoded, and the notes say so.
+
+    >>> from stackdr.core import get_target
+    >>> frame = pd.DataFrame(
+    ...     {
+    ...         "treated": [1, 0, 1, 0, 1, 0],
+    ...         "outcome": [2.5, 1.0, 3.0, 0.5, 2.0, 1.5],
+    ...         "site": ["north", "south", "east", "north", "south", "east"],
+    ...         "age": [34, 51, 47, 62, 29, 55],
+    ...     }
+    ... )
+    >>> data = prepare_data(frame, "treated", "outcome", target=get_target("ate"), folds=2)
+    >>> data.n, data.covariate_names
+    (6, ['age', 'site_north', 'site_south'])
+    >>> data.A.tolist()
+    [1.0, 0.0, 1.0, 0.0, 1.0, 0.0]
+    >>> data.notes
+    ["one-hot encoded non-numeric covariates: 'site'"]
     """
     notes: list[str] = []
     if isinstance(data, pd.DataFrame):

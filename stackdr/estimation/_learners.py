@@ -247,7 +247,20 @@ CATALOGUE: dict[str, CatalogueEntry] = {
 
 
 def make_learner(name: str, **params) -> BaseEstimator:
-    """Build a catalogue learner by name with optional parameter overrides."""
+    """Build a catalogue learner by name with optional parameter overrides.
+
+    Examples
+    --------
+    >>> learner = make_learner("knn-regressor", n_neighbors=10)
+    >>> [type(step).__name__ for step in learner]
+    ['StandardScaler', 'KNeighborsRegressor']
+    >>> learner[-1].n_neighbors
+    10
+    >>> make_learner("lasso", folds=3)
+    Traceback (most recent call last):
+    ...
+    stackdr.errors.InputError: learner 'lasso' has no parameter 'folds' (parameters: cv)
+    """
     if name not in CATALOGUE:
         raise InputError(f"unknown learner {name!r}; see the catalogue: {', '.join(CATALOGUE)}")
     entry = CATALOGUE[name]

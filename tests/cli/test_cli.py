@@ -19,21 +19,8 @@ from stackdr.cli._main import main, read_table
 from stackdr.estimation import CATALOGUE, CAUTION
 from stackdr.io import read_results_json
 from stackdr.studies import simulate_demo
+from tests.helpers import QUICK
 
-QUICK = """
-[settings]
-folds = 3
-bootstrap = 10
-progress = false
-
-[propensity.logistic]
-[propensity.constant]
-learner = "constant-classifier"
-
-[outcome.linear]
-[outcome.constant]
-learner = "constant-regressor"
-"""
 # A continuous treatment needs regressions as propensity learners.
 CONTINUOUS = QUICK.replace("logistic]", "linear]").replace(
     "constant-classifier", "constant-regressor"
@@ -198,6 +185,7 @@ def test_learners_lists_the_catalogue(capsys):
     assert "n_estimators=100" in out
 
 
+@pytest.mark.slow
 def test_demo_command(tmp_path, capsys):
     with threadpool_limits(1):
         code, out, _ = run(
@@ -332,6 +320,7 @@ def test_user_mistakes_in_process(bad, case, capsys):
 SUBPROCESS_CASES = ["missing file", "unknown target", "unreadable config", "existing results"]
 
 
+@pytest.mark.slow
 def test_user_mistakes_as_processes(bad, workspace):
     root, _ = workspace
     env = {**os.environ, "OMP_NUM_THREADS": "1"}

@@ -23,9 +23,7 @@ import pytest
 
 from stackdr.cli import main
 from stackdr.io import read_results_json
-from tests.cli.test_cli import QUICK
-from tests.helpers import confounded_data
-from tests.test_faults import estimate_args
+from tests.helpers import QUICK, QUICK_NO_BOOTSTRAP, confounded_data, estimate_args
 
 # Learners slow enough that a run is still fitting when the signal arrives.
 SLOW = """
@@ -55,7 +53,7 @@ def root(tmp_path_factory) -> Path:
     frame.to_csv(root / "data.csv", index=False)
     (root / "slow.toml").write_text(SLOW)
     (root / "long.toml").write_text(LONG_BOOTSTRAP)
-    (root / "quick.toml").write_text(QUICK.replace("bootstrap = 10", "bootstrap = 0"))
+    (root / "quick.toml").write_text(QUICK_NO_BOOTSTRAP)
     return root
 
 
@@ -125,6 +123,7 @@ def assert_clean_interrupt(code: int, stderr: str, out: Path, marker: str) -> No
     assert processes_with(marker) == [], "worker processes outlived the interrupted run"
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("jobs", [1, 2])
 def test_ctrl_c_while_fitting(root, jobs):
     out = root / f"fitting-{jobs}"
@@ -135,6 +134,7 @@ def test_ctrl_c_while_fitting(root, jobs):
     assert_clean_interrupt(code, stderr, out, marker)
 
 
+@pytest.mark.slow
 def test_ctrl_c_during_the_bootstrap(root):
     out = root / "bootstrap"
     marker = uuid.uuid4().hex

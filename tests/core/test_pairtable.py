@@ -162,6 +162,7 @@ def test_row_order_invariance_with_moving_folds(rng):
     np.testing.assert_allclose(Psi_p, Psi, rtol=1e-9)
 
 
+@pytest.mark.slow
 def test_same_seed_same_numbers_for_any_n_jobs(rng):
     from stackdr.estimation import make_learner
 

@@ -9,7 +9,6 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from hypothesis.extra.numpy import arrays
 
 from stackdr.core import (
     minimax_risk,
@@ -22,23 +21,7 @@ from stackdr.core import (
     weight_sensitivity,
 )
 from stackdr.errors import InputError
-
-finite = st.floats(-50, 50, allow_nan=False, allow_infinity=False)
-
-
-@st.composite
-def tables(draw, max_k=6, elements=finite):
-    """Pair tables (or value matrices) of shape up to max_k x max_k."""
-    k1 = draw(st.integers(1, max_k))
-    k2 = draw(st.integers(1, max_k))
-    return draw(arrays(float, (k1, k2), elements=elements))
-
-
-@st.composite
-def simplex_points(draw, k):
-    raw = draw(arrays(float, (k,), elements=st.floats(0.0, 1.0)))
-    raw = raw + 1e-3  # keeps the normalising sum away from zero
-    return raw / raw.sum()
+from tests.helpers import simplex_points, tables
 
 
 def test_worked_example_by_hand():

@@ -45,6 +45,7 @@ def _study(path, **kwargs):
     return read_results(path).drop(columns=TIMING)
 
 
+@pytest.mark.slow
 def test_study_on_cluster_equals_local_run(tmp_path, client):
     local = _study(tmp_path / "local.sqlite")
     remote = _study(tmp_path / "dask.sqlite", backend="dask", cluster=client)
@@ -52,6 +53,7 @@ def test_study_on_cluster_equals_local_run(tmp_path, client):
     pd.testing.assert_frame_equal(remote, local)
 
 
+@pytest.mark.slow
 @pytest.mark.parametrize("kind", ["multinomial", "refit"])
 def test_estimator_on_cluster_equals_local_fit(client, kind):
     data = get_design("lunceford-davidian").simulate(240, np.random.default_rng(8))
@@ -86,6 +88,7 @@ def test_backend_settings_are_checked():
     assert dask_jobs(None) == -1 and dask_jobs(1) == -1 and dask_jobs(4) == 4
 
 
+@pytest.mark.slow
 def test_estimate_command_on_a_local_cluster(tmp_path):
     # `stackdr estimate --local-cluster 2` runs the learner fits on dask and writes the same
     # estimate as the local run.

@@ -148,6 +148,7 @@ def test_row_order_does_not_matter_when_folds_move_with_rows(seed, target, data_
     np.testing.assert_allclose(shuffled.beta, base.beta, atol=1e-7)
 
 
+@pytest.mark.slow
 @FITS
 @given(seed=seeds, target=targets, columns=st.permutations(["x1", "x2", "x3"]))
 def test_covariate_order_does_not_matter(seed, target, columns):
@@ -158,6 +159,7 @@ def test_covariate_order_does_not_matter(seed, target, columns):
     np.testing.assert_allclose(estimates(reordered), estimates(base), rtol=1e-7, atol=1e-9)
 
 
+@pytest.mark.slow
 @FITS
 @given(
     seed=seeds,

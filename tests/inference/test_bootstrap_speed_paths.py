@@ -20,10 +20,6 @@ from stackdr.inference._reweighting import (
     replicate_generators,
 )
 from stackdr.search import SearchSettings, _polish, lattice_resolution, run_search, simplex_lattice
-from tests.inference import test_inference
-
-# The small ATE fit of the bootstrap tests (three propensity, two outcome learners).
-small_fit = test_inference.small_fit
 
 
 def _row_weights(n: int, count: int) -> np.ndarray:

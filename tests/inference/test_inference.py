@@ -30,6 +30,7 @@ PLAIN_MEAN = Target(
 )
 
 
+@pytest.mark.slow
 def test_plain_mean_matches_scipy_bootstrap():
     # Reference: scipy.stats.bootstrap(method="percentile") on the same data. Both are Monte
     # Carlo approximations of the same bootstrap distribution of the mean; with B = 5000 the SE
@@ -64,19 +65,6 @@ def test_plain_mean_matches_scipy_bootstrap():
     assert abs(low - ref.confidence_interval.low) < 0.22 * sd
     assert abs(high - ref.confidence_interval.high) < 0.22 * sd
     assert res.bootstrap.standard_errors["target-aimed stacking"] == pytest.approx(sd, rel=0.08)
-
-
-@pytest.fixture(scope="module")
-def small_fit():
-    X, A, Y, _ = confounded_data(np.random.default_rng(21), 500)
-    prop = {
-        "logit": LogisticRegression(),
-        "flat": DummyClassifier(strategy="prior"),
-        "sharp": LogisticRegression(C=100.0),
-    }
-    outc = {"ols": LinearRegression(), "mean": DummyRegressor()}
-    est = BlendEstimator("ate", prop, outc, bootstrap=0, seed=7)
-    return est, est.fit(X, A, Y)
 
 
 def test_bootstrap_zero_disables(small_fit):

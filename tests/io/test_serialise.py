@@ -4,12 +4,9 @@ import json
 import re
 
 import numpy as np
-import pandas as pd
 import pytest
-from sklearn.dummy import DummyClassifier, DummyRegressor
-from sklearn.linear_model import LinearRegression, LogisticRegression
 
-from stackdr import BlendEstimator, InputError
+from stackdr import InputError
 from stackdr.io import (
     SCHEMA,
     effective_sample_size,
@@ -19,34 +16,12 @@ from stackdr.io import (
     validate_results,
     write_results_json,
 )
-from tests.helpers import confounded_data
-
-SCRIPT = "<script>alert(1)</script>"
-SHELL = '"; rm -rf /'
-MATH = r"cost $\undefinedcmd$"
-
-
-def small_fit(bootstrap: int = 50, seed: int = 3):
-    """A quick ATE fit whose names are hostile user text: three propensity learners (one named
-    like a script tag, one with an invalid mathtext command) and two outcome learners."""
-    rng = np.random.default_rng(seed)
-    X, A, Y, _ = confounded_data(rng, 400)
-    frame = pd.DataFrame({SCRIPT: X[:, 0], "x2": X[:, 1], MATH: X[:, 2], "treated": A, SHELL: Y})
-    propensity = {
-        SCRIPT: LogisticRegression(),
-        "constant": DummyClassifier(strategy="prior"),
-        MATH: LogisticRegression(C=0.05),
-    }
-    outcome = {SHELL: LinearRegression(), "mean": DummyRegressor()}
-    estimator = BlendEstimator(
-        "ate", propensity, outcome, folds=4, bootstrap=bootstrap, seed=seed, n_jobs=1
-    )
-    return estimator.fit(frame, "treated", SHELL)
+from tests.helpers import MATH, SCRIPT, SHELL, hostile_fit
 
 
 @pytest.fixture(scope="module")
 def fitted():
-    result = small_fit()
+    result = hostile_fit()
     return result, result_to_dict(result)
 
 

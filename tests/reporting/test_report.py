@@ -27,8 +27,7 @@ from stackdr.reporting._figures import (
     ternary_surface,
     ternary_xy,
 )
-from tests.helpers import confounded_data
-from tests.io.test_serialise import MATH, SCRIPT, SHELL, small_fit
+from tests.helpers import MATH, SCRIPT, SHELL, confounded_data, hostile_fit
 
 # MATH has no HTML-special characters; it checks that figures escape mathtext instead.
 HOSTILE = [SCRIPT, SHELL]
@@ -75,7 +74,7 @@ def parse(page: str) -> PageParser:
 
 @pytest.fixture(scope="module")
 def results():
-    return result_to_dict(small_fit())
+    return result_to_dict(hostile_fit())
 
 
 @pytest.fixture(scope="module")
@@ -114,6 +113,7 @@ def test_user_text_appears_only_escaped(report_dir):
     assert f"<title>Study {html.escape(SCRIPT)} {html.escape(SHELL)}</title>" in page
 
 
+@pytest.mark.slow
 def test_rebuild_from_saved_json_is_byte_identical(results, report_dir, tmp_path):
     path = write_results_json(results, tmp_path / "results.json")
     again = tmp_path / "again"
@@ -134,7 +134,7 @@ def test_rebuild_from_saved_json_is_byte_identical(results, report_dir, tmp_path
 
 
 def test_report_without_bootstrap(tmp_path):
-    d = result_to_dict(small_fit(bootstrap=0, seed=5))
+    d = result_to_dict(hostile_fit(bootstrap=0, seed=5))
     assert d["bootstrap"] is None and d["interval"]["method"] == "wald"
     # A previous report with bootstrap figures in the same folder must not leave them behind.
     (tmp_path / "figures").mkdir()

@@ -35,7 +35,7 @@ from stackdr.search import (
     tie_break_general,
     tie_break_range,
 )
-from tests.core.test_risks import simplex_points, tables
+from tests.helpers import simplex_points, tables
 
 values = st.floats(-10, 10, allow_nan=False, allow_infinity=False)
 

@@ -77,6 +77,7 @@ def reference(tmp_path_factory):
     return path
 
 
+@pytest.mark.slow
 def test_cli_study_end_to_end(tmp_path, capsys, reference):
     path = tmp_path / "small.sqlite"
     assert main(_cli_args(path, 3)) == 0
@@ -134,6 +135,7 @@ def _stored(path):
         return 0
 
 
+@pytest.mark.slow
 def test_kill_then_resume_equals_uninterrupted_run(tmp_path, capsys, reference):
     path = tmp_path / "killed.sqlite"
     env = {**os.environ, "OMP_NUM_THREADS": "1"}

@@ -135,6 +135,7 @@ if __name__ == "__main__":
 """
 
 
+@pytest.mark.slow
 def test_resume_after_sigkill_matches_uninterrupted_run(tmp_path, reference):
     script = tmp_path / "run.py"
     script.write_text(KILL_SCRIPT.format(tests=str(Path(__file__).parent)))
@@ -251,6 +252,7 @@ def test_study_record_holds_the_stored_settings(tmp_path):
     assert record["format"] == "stackdr-study/1" and record["code"] == _store.code_fingerprint()
 
 
+@pytest.mark.slow
 def test_replicate_seeds_are_deterministic_and_distinct():
     seeds = replicate_seeds(7, "kang-schafer", 200, 3)
     assert seeds == replicate_seeds(7, "kang-schafer", 200, 3)
@@ -299,7 +301,7 @@ def test_stored_rows_match_direct_computation(reference):
     assert naive["low"].isna().all() and naive["weights"].isna().all()
 
 
-@pytest.mark.parametrize("how", ["loky", "dask"])
+@pytest.mark.parametrize("how", ["loky", pytest.param("dask", marks=pytest.mark.slow)])
 def test_parallel_backends_match_serial_run(tmp_path, reference, how):
     path = tmp_path / f"{how}.db"
     if how == "loky":
@@ -463,6 +465,7 @@ def test_files_from_before_code_was_recorded(tmp_path):
         summarise_study(path)
 
 
+@pytest.mark.slow
 def test_cli_refuses_a_code_change_with_one_line(tmp_path, monkeypatch, capsys):
     from stackdr.cli import main
 
