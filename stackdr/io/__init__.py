@@ -18,7 +18,6 @@ from stackdr.io._export import (
 from stackdr.io._results_json import (
     SCHEMA,
     atomic_write,
-    effective_sample_size,
     plain,
     read_results_json,
     result_to_dict,
@@ -36,7 +35,6 @@ __all__ = [
     "blended_models",
     "blended_nuisances",
     "check_setting",
-    "effective_sample_size",
     "estimator_kwargs",
     "load_config",
     "plain",

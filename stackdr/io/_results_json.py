@@ -1,7 +1,8 @@
 """The saved-results format: a fitted result as a plain, versioned JSON document.
 
-:func:`result_to_dict` turns a :class:`~stackdr.results.BlendResult` into nested dicts, lists,
-strings, numbers, booleans and nulls only; :func:`write_results_json` writes it atomically and
+:func:`result_to_dict` turns a :class:`stackdr.estimation.BlendResult` into nested dicts, lists,
+strings, numbers, booleans and nulls only (its diagnostics are computed by the result itself and
+only formatted here); :func:`write_results_json` writes it atomically and
 :func:`read_results_json` reads and validates it. The layout is documented field by field in
 ``docs/results-schema.md``. NaN and infinities are stored as ``null`` (JSON has no token for them,
 RFC 8259 section 6). Learner and column names are user text and are only ever stored as data.
@@ -17,17 +18,12 @@ import secrets
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import expit, logit
 
 from stackdr import __version__
-from stackdr.core import blended_weight_side
 from stackdr.errors import InputError
 from stackdr.estimation import CAUTION, BlendResult, phi_function
 
 SCHEMA = "stackdr-results/1"
-ARMS = ("treated", "control")
-# Fixed bins for the overlap histogram so reports of different fits are comparable.
-OVERLAP_EDGES = np.linspace(0.0, 1.0, 41)
 
 
 # --------------------------------------------------------------------------------- conversion
@@ -144,36 +140,9 @@ def _masked(names, mask) -> list:
     return list(names) if mask is None else [n for n, m in zip(names, mask) if m]
 
 
-def _blended_propensity(result: BlendResult) -> np.ndarray:
-    """Probability-scale propensity at the chosen weights (first fold assignment). The logit
-    blend averages logits; the riesz and probability blends are shown as the probability
-    average (the riesz blend itself averages weight-side values, see the schema notes)."""
-    pi = result.crossfit.propensity[0]
-    alpha = result.alpha.to_numpy()
-    if result.settings.get("blend") == "logit":
-        return expit(logit(pi) @ alpha)
-    return pi @ alpha
-
-
-def _arm_weight_values(result: BlendResult) -> np.ndarray:
-    """Per-row weight-side magnitude sum_c |p_c(X_i) h1_c(O_i)| at the chosen weights."""
-    inp = result.analysis.inputs[0]
-    p_alpha = blended_weight_side(inp, result.alpha.to_numpy()[None, :], result.settings["blend"])
-    return sum(np.abs(p[:, 0] * h1) for p, h1 in zip(p_alpha, inp.h1))
-
-
-def effective_sample_size(weights: np.ndarray) -> float | None:
-    """Kish's effective sample size (sum w)^2 / sum w^2; None when every weight is zero."""
-    weights = np.asarray(weights, dtype=float)
-    total_sq = float(np.sum(weights**2))
-    if total_sq == 0.0:
-        return None
-    return float(np.sum(weights) ** 2 / total_sq)
-
-
 def _diagnostics(result: BlendResult) -> dict:
     cf, data = result.crossfit, result.data
-    clip = result.clip_counts
+    diag = result.diagnostics
     learners = [
         {
             "side": row["side"],
@@ -189,42 +158,31 @@ def _diagnostics(result: BlendResult) -> dict:
     for key, message in cf.failures.items():
         side, name = key.split(":", 1)
         failed.append({"side": side, "learner": name, "reason": message})
-    out = {
-        "clip": plain(cf.clip),
+    hist = diag.overlap_histogram
+    ranges = diag.propensity_range
+    return {
+        "clip": plain(diag.clip),
         "repeats": cf.repeats,
         "propensity_kind": cf.propensity_kind,
-        "clipping": {
-            str(name): {"low": int(lo), "high": int(hi)}
-            for name, (lo, hi) in zip(clip.index, clip.to_numpy())
+        "clipping": {name: {"low": lo, "high": hi} for name, (lo, hi) in diag.clipped.items()},
+        "arm_sizes": plain(diag.arm_sizes),
+        "propensity_range": None
+        if ranges is None
+        else {
+            arm: None if span is None else {"min": plain(span[0]), "max": plain(span[1])}
+            for arm, span in ranges.items()
         },
-        "arm_sizes": None,
-        "propensity_range": None,
-        "effective_sample_size": None,
-        "overlap_histogram": None,
+        "effective_sample_size": plain(diag.effective_sample_size),
+        "overlap_histogram": None
+        if hist is None
+        else {
+            "edges": plain(hist.edges),
+            "counts": {arm: plain(counts) for arm, counts in hist.counts.items()},
+        },
         "learners": learners,
         "failed_learners": failed,
         "notes": [str(note) for note in data.notes],
     }
-    if cf.propensity_kind != "classifier":
-        return out
-    pi = _blended_propensity(result)
-    w = _arm_weight_values(result)
-    arms = {"treated": data.A == 1, "control": data.A == 0}
-    out["arm_sizes"] = {arm: int(rows.sum()) for arm, rows in arms.items()}
-    out["propensity_range"] = {
-        arm: ({"min": plain(pi[rows].min()), "max": plain(pi[rows].max())} if rows.any() else None)
-        for arm, rows in arms.items()
-    }
-    out["effective_sample_size"] = {
-        arm: effective_sample_size(w[rows]) for arm, rows in arms.items()
-    }
-    out["overlap_histogram"] = {
-        "edges": plain(OVERLAP_EDGES),
-        "counts": {
-            arm: plain(np.histogram(pi[rows], bins=OVERLAP_EDGES)[0]) for arm, rows in arms.items()
-        },
-    }
-    return out
 
 
 def _bootstrap(result: BlendResult) -> dict | None:

@@ -10,9 +10,9 @@ from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.linear_model import LinearRegression, LogisticRegression
 
 from stackdr import BlendEstimator, InputError
+from stackdr.estimation import effective_sample_size
 from stackdr.io import (
     SCHEMA,
-    effective_sample_size,
     plain,
     read_results_json,
     result_to_dict,
