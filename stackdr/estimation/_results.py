@@ -64,11 +64,16 @@ class BlendResult:
         Chosen weights of the propensity and outcome libraries, indexed by learner name.
     estimators : list of EstimatorRow
         The comparison table rows (target-aimed first).
-    search : solvers.WeightSearch
+    search : stackdr.search.WeightSearch
         Sensitivities, pseudo-risk and solver records at the chosen weights.
     crossfit, analysis, data, target : the ingredients (out-of-fold predictions, pair tables,
         losses, validated data).
     bootstrap : inference.BootstrapResult or None
+
+    See Also
+    --------
+    summary : the comparison table as a :class:`ResultSummary` (text, HTML, DataFrame).
+    diagnostics : overlap and clipping at the chosen weights (:class:`Diagnostics`).
     """
 
     target: object
