@@ -29,7 +29,7 @@ def main(small: bool = False) -> None:
         seed=0,
     )
     result = estimator.fit(frame, treatment="programme", outcome="sbp_change")
-    result.summary()
+    print(result.summary())
     print("\nPropensity weights:\n" + result.alpha.round(3).to_string())
     print("\nOutcome weights:\n" + result.beta.round(3).to_string())
     print("\nPair table (AIPW estimate for every propensity x outcome learner pair):")

@@ -241,7 +241,7 @@ def _run_estimate(args: argparse.Namespace) -> int:
     paths = _write_outputs(result, out_dir, overwrite=overwrite, run=run)
     _print_written(paths)
     print()
-    result.summary()
+    print(result.summary())
     return 0
 
 

@@ -2,6 +2,15 @@
 
 from stackdr.estimation._crossfit import CrossFitResult, cross_fit, make_folds
 from stackdr.estimation._data import PreparedData, prepare_data
+from stackdr.estimation._diagnostics import (
+    OVERLAP_EDGES,
+    Diagnostics,
+    OverlapHistogram,
+    blended_propensity,
+    effective_sample_size,
+    fit_diagnostics,
+    weight_side_values,
+)
 from stackdr.estimation._estimator import BlendEstimator, phi_function
 from stackdr.estimation._learners import (
     CATALOGUE,
@@ -13,7 +22,7 @@ from stackdr.estimation._learners import (
     parametric_propensity_library,
 )
 from stackdr.estimation._parallel import check_cluster, dask_backend, dask_jobs, parallel_backend
-from stackdr.estimation._results import CAUTION, BlendResult, EstimatorRow
+from stackdr.estimation._results import CAUTION, BlendResult, EstimatorRow, ResultSummary
 from stackdr.estimation._settings import (
     BOOTSTRAP_KINDS,
     CONFIG_SETTINGS,
@@ -31,29 +40,36 @@ from stackdr.estimation._settings import (
 
 __all__ = [
     "BOOTSTRAP_KINDS",
-    "CATALOGUE",
-    "CAUTION",
-    "DIRECTIONS",
-    "ESTIMATOR_PARAMS",
-    "INTERVALS",
-    "CONFIG_SETTINGS",
-    "SETTINGS",
-    "STUDY_SETTINGS",
     "BlendEstimator",
     "BlendResult",
+    "CATALOGUE",
+    "CAUTION",
+    "CONFIG_SETTINGS",
     "CrossFitResult",
+    "DIRECTIONS",
+    "Diagnostics",
+    "ESTIMATOR_PARAMS",
     "EstimatorRow",
+    "INTERVALS",
+    "OVERLAP_EDGES",
+    "OverlapHistogram",
     "PreparedData",
+    "ResultSummary",
+    "SETTINGS",
+    "STUDY_SETTINGS",
     "Setting",
-    "check_value",
-    "close_match",
+    "blended_propensity",
     "check_cluster",
     "check_library",
+    "check_value",
+    "close_match",
     "cross_fit",
     "dask_backend",
     "dask_jobs",
     "default_outcome_library",
     "default_propensity_library",
+    "effective_sample_size",
+    "fit_diagnostics",
     "make_folds",
     "make_learner",
     "parallel_backend",
@@ -63,4 +79,5 @@ __all__ = [
     "prepare_data",
     "settings_record",
     "validate_params",
+    "weight_side_values",
 ]

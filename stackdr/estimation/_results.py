@@ -1,7 +1,8 @@
 """Result records of the main estimator: tables a statistician can read.
 
-``BlendResult.summary()`` prints an aligned table and returns it as a DataFrame; notebooks get an
-HTML rendering through ``_repr_html_``.
+``BlendResult.summary()`` returns a :class:`ResultSummary`, a table with text, HTML and DataFrame
+forms (``print(result.summary())`` shows the aligned text; notebooks render the HTML). The repr
+of a result is one line.
 """
 
 from __future__ import annotations
@@ -12,6 +13,8 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 from scipy.stats import norm
+
+from stackdr.estimation._diagnostics import Diagnostics, fit_diagnostics
 
 CAUTION = (
     "A causal reading needs consistency, no unmeasured confounding and positivity; the tool "
@@ -48,7 +51,7 @@ class EstimatorRow:
         return self.estimate - z * self.se, self.estimate + z * self.se
 
 
-@dataclass
+@dataclass(repr=False)
 class BlendResult:
     """Everything a fit produced.
 
@@ -61,11 +64,16 @@ class BlendResult:
         Chosen weights of the propensity and outcome libraries, indexed by learner name.
     estimators : list of EstimatorRow
         The comparison table rows (target-aimed first).
-    search : solvers.WeightSearch
+    search : stackdr.search.WeightSearch
         Sensitivities, pseudo-risk and solver records at the chosen weights.
     crossfit, analysis, data, target : the ingredients (out-of-fold predictions, pair tables,
         losses, validated data).
     bootstrap : inference.BootstrapResult or None
+
+    See Also
+    --------
+    summary : the comparison table as a :class:`ResultSummary` (text, HTML, DataFrame).
+    diagnostics : overlap and clipping at the chosen weights (:class:`Diagnostics`).
     """
 
     target: object
@@ -200,48 +208,63 @@ class BlendResult:
                     )
         return pd.DataFrame(rows)
 
-    def summary(self, print_it: bool = True) -> pd.DataFrame:
-        """Print an aligned summary and return the comparison table as a DataFrame."""
-        table = self.comparison()
-        if print_it:
-            print(self._summary_text(table))
-        return table
+    @property
+    def diagnostics(self) -> Diagnostics:
+        """Overlap and clipping at the chosen propensity weights: blended propensity, effective
+        sample size per arm, overlap histogram and clipping counts (computed on access)."""
+        cf = self.crossfit
+        return fit_diagnostics(
+            clip=cf.clip,
+            clip_counts=cf.clip_counts.sum(axis=0),
+            learner_names=cf.propensity_names,
+            binary=cf.propensity_kind == "classifier",
+            propensity=cf.propensity[0],
+            inputs=self.analysis.inputs[0],
+            treatment=self.data.A,
+            alpha=self.alpha.to_numpy(),
+            blend=self.settings["blend"],
+        )
 
-    def _summary_text(self, table: pd.DataFrame) -> str:
-        pct = f"{100 * self.level:g}%"
-        lines = [
-            f"stackdr: {self.target.description}",
-            f"n = {self.data.n}, folds = {self.settings['folds']}, blend = "
-            f"{self.settings['blend']}, criterion = {self.settings['criterion']}, "
-            f"tie-break = {'on' if self.settings['tie_break'] else 'off'}",
-            "",
-            f"{'estimator':<30}{'estimate':>12}{'SE':>10}{pct + ' low':>12}{pct + ' high':>12}"
-            f"{'interval':>12}{'pseudo-risk':>13}",
-        ]
-        for _, r in table.iterrows():
-            lines.append(
-                f"{r['estimator']:<30}{r['estimate']:>12.4g}{r['se']:>10.3g}{r['low']:>12.4g}"
-                f"{r['high']:>12.4g}{r['interval']:>12}{r['pseudo_risk']:>13.3g}"
-            )
-        lines += ["", "Weights (target-aimed):"]
-        for side, series in (("propensity", self.alpha), ("outcome", self.beta)):
-            lines.append(f"  {side:<11}" + "  ".join(f"{k} {v:.3f}" for k, v in series.items()))
-        lines += [
-            f"Sensitivities at the chosen weights: outcome direction {self.search.s_out:.3g}, "
-            f"weight direction {self.search.s_ps:.3g}; tie-break moved weights: "
-            f"{'yes' if self.tie_break_active else 'no'}",
-            "",
-            "Caution: " + CAUTION,
-        ]
-        return "\n".join(lines)
+    def summary(self) -> ResultSummary:
+        """The comparison table with the fit's settings, chosen weights, sensitivities and the
+        standing caution; ``print(result.summary())`` shows it as aligned text.
+
+        Returns
+        -------
+        ResultSummary
+        """
+        return ResultSummary(
+            title=f"stackdr: {self.target.description}",
+            details=(
+                f"n = {self.data.n}, folds = {self.settings['folds']}, blend = "
+                f"{self.settings['blend']}, criterion = {self.settings['criterion']}, "
+                f"tie-break = {'on' if self.settings['tie_break'] else 'off'}"
+            ),
+            table=self.comparison(),
+            level=self.level,
+            weights={"propensity": self.alpha.copy(), "outcome": self.beta.copy()},
+            sensitivities=(
+                f"Sensitivities at the chosen weights: outcome direction {self.search.s_out:.3g}, "
+                f"weight direction {self.search.s_ps:.3g}; tie-break moved weights: "
+                f"{'yes' if self.tie_break_active else 'no'}"
+            ),
+        )
 
     def __str__(self) -> str:
-        return self._summary_text(self.comparison())
+        return self.summary().as_text()
+
+    def __repr__(self) -> str:
+        low, high = self.interval
+        cf = self.crossfit
+        return (
+            f"BlendResult({self.target.name}: estimate {self.estimate:.4g}, SE {self.se:.3g}, "
+            f"{100 * self.level:g}% {self.interval_method} interval [{low:.4g}, {high:.4g}], "
+            f"n = {self.data.n}, learners {len(cf.propensity_names)} propensity + "
+            f"{len(cf.outcome_names)} outcome)"
+        )
 
     def _repr_html_(self) -> str:
-        table = self.comparison()
-        head = html.escape(f"stackdr: {self.target.description} (n = {self.data.n})")
-        return f"<div><strong>{head}</strong>{table.to_html(index=False, escape=True)}</div>"
+        return self.summary().as_html()
 
     def attach_bootstrap(self, boot) -> None:
         """Replace the Wald intervals by the bootstrap's, estimator by estimator."""
@@ -255,3 +278,111 @@ class BlendResult:
 
 def _weights_text(names, weights) -> str:
     return ", ".join(f"{n} {w:.2f}" for n, w in zip(names, weights) if w > 5e-3)
+
+
+@dataclass(frozen=True, eq=False)
+class ResultSummary:
+    """A fit's summary: the comparison table with its context, as text, HTML or a DataFrame.
+
+    ``str(summary)`` (and so ``print``) gives the aligned text; notebooks show the HTML.
+
+    Attributes
+    ----------
+    title : str
+        What was estimated.
+    details : str
+        Rows and the main settings, one line.
+    table : pandas.DataFrame
+        One row per estimator (:meth:`BlendResult.comparison`).
+    level : float
+        Confidence level of the intervals.
+    weights : dict of str to pandas.Series
+        Target-aimed weights of the ``"propensity"`` and ``"outcome"`` libraries.
+    sensitivities : str
+        Sensitivities at the chosen weights and whether the tie-break moved them, one line.
+    caution : str
+        The standing caution on a causal reading.
+    """
+
+    title: str
+    details: str
+    table: pd.DataFrame
+    level: float
+    weights: dict
+    sensitivities: str
+    caution: str = CAUTION
+
+    def as_frame(self) -> pd.DataFrame:
+        """The comparison table (a copy).
+
+        Returns
+        -------
+        pandas.DataFrame
+        """
+        return self.table.copy()
+
+    def as_text(self) -> str:
+        """The summary as aligned plain text.
+
+        Returns
+        -------
+        str
+        """
+        pct = f"{100 * self.level:g}%"
+        lines = [
+            self.title,
+            self.details,
+            "",
+            f"{'estimator':<30}{'estimate':>12}{'SE':>10}{pct + ' low':>12}{pct + ' high':>12}"
+            f"{'interval':>12}{'pseudo-risk':>13}",
+        ]
+        for _, r in self.table.iterrows():
+            lines.append(
+                f"{r['estimator']:<30}{r['estimate']:>12.4g}{r['se']:>10.3g}{r['low']:>12.4g}"
+                f"{r['high']:>12.4g}{r['interval']:>12}{r['pseudo_risk']:>13.3g}"
+            )
+        lines += ["", "Weights (target-aimed):"]
+        for side, series in self.weights.items():
+            lines.append(f"  {side:<11}" + "  ".join(f"{k} {v:.3f}" for k, v in series.items()))
+        lines += [self.sensitivities, "", "Caution: " + self.caution]
+        return "\n".join(lines)
+
+    def as_html(self) -> str:
+        """The summary as an HTML fragment (all text escaped; no scripts or styles).
+
+        Returns
+        -------
+        str
+        """
+        pct = f"{100 * self.level:g}%"
+        shown = pd.DataFrame(
+            {
+                "estimator": self.table["estimator"],
+                "estimate": [f"{v:.4g}" for v in self.table["estimate"]],
+                "SE": [f"{v:.3g}" for v in self.table["se"]],
+                f"{pct} low": [f"{v:.4g}" for v in self.table["low"]],
+                f"{pct} high": [f"{v:.4g}" for v in self.table["high"]],
+                "interval": self.table["interval"],
+                "pseudo-risk": [f"{v:.3g}" for v in self.table["pseudo_risk"]],
+            }
+        )
+        weights = "; ".join(
+            f"{side}: " + ", ".join(f"{k} {v:.3f}" for k, v in series.items())
+            for side, series in self.weights.items()
+        )
+        e = html.escape
+        return (
+            f"<div><p><strong>{e(self.title)}</strong><br>{e(self.details)}</p>"
+            f"{shown.to_html(index=False, escape=True)}"
+            f"<p>Weights (target-aimed): {e(weights)}</p><p>{e(self.sensitivities)}</p>"
+            f"<p>Caution: {e(self.caution)}</p></div>"
+        )
+
+    def __str__(self) -> str:
+        return self.as_text()
+
+    def __repr__(self) -> str:
+        return self.as_text()
+
+    def _repr_html_(self) -> str:
+        return self.as_html()

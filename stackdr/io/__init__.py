@@ -1,5 +1,5 @@
-"""Input and output: saved results (``results.json``), TOML configuration, exported nuisances
-and blended scikit-learn models."""
+"""Input and output: saved results (``results.json`` and its JSON Schema), TOML configuration,
+exported nuisances and blended scikit-learn models."""
 
 from stackdr.io._config import (
     ESTIMATOR_SETTINGS,
@@ -16,15 +16,13 @@ from stackdr.io._export import (
     blended_nuisances,
 )
 from stackdr.io._results_json import (
-    SCHEMA,
     atomic_write,
-    effective_sample_size,
     plain,
     read_results_json,
     result_to_dict,
-    validate_results,
     write_results_json,
 )
+from stackdr.io._results_schema import SCHEMA, field_reference, results_schema, validate_results
 
 __all__ = [
     "ESTIMATOR_SETTINGS",
@@ -36,13 +34,14 @@ __all__ = [
     "blended_models",
     "blended_nuisances",
     "check_setting",
-    "effective_sample_size",
     "estimator_kwargs",
+    "field_reference",
     "load_config",
     "plain",
     "read_results_json",
     "resolve_settings",
     "result_to_dict",
+    "results_schema",
     "validate_results",
     "write_results_json",
 ]

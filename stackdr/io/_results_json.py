@@ -1,10 +1,12 @@
 """The saved-results format: a fitted result as a plain, versioned JSON document.
 
-:func:`result_to_dict` turns a :class:`~stackdr.results.BlendResult` into nested dicts, lists,
-strings, numbers, booleans and nulls only; :func:`write_results_json` writes it atomically and
-:func:`read_results_json` reads and validates it. The layout is documented field by field in
-``docs/results-schema.md``. NaN and infinities are stored as ``null`` (JSON has no token for them,
-RFC 8259 section 6). Learner and column names are user text and are only ever stored as data.
+:func:`result_to_dict` turns a :class:`stackdr.estimation.BlendResult` into nested dicts, lists,
+strings, numbers, booleans and nulls only (its diagnostics are computed by the result itself and
+only formatted here); :func:`write_results_json` writes it atomically and
+:func:`read_results_json` reads it and validates it against the shipped JSON Schema
+(``results.schema.json``, documented field by field in ``docs/results-schema.md``). NaN and
+infinities are stored as ``null`` (JSON has no token for them, RFC 8259 section 6). Learner and
+column names are user text and are only ever stored as data.
 """
 
 from __future__ import annotations
@@ -14,21 +16,13 @@ import math
 import os
 import pathlib
 import secrets
-from dataclasses import dataclass
 
 import numpy as np
-from scipy.special import expit, logit
 
 from stackdr._version import __version__
-from stackdr.core import blended_weight_side
 from stackdr.errors import InputError
 from stackdr.estimation import CAUTION, BlendResult, phi_function
-
-SCHEMA = "stackdr-results/1"
-ARMS = ("treated", "control")
-# Fixed bins for the overlap histogram so reports of different fits are comparable.
-OVERLAP_EDGES = np.linspace(0.0, 1.0, 41)
-
+from stackdr.io._results_schema import SCHEMA, validate_results
 
 # --------------------------------------------------------------------------------- conversion
 
@@ -144,36 +138,9 @@ def _masked(names, mask) -> list:
     return list(names) if mask is None else [n for n, m in zip(names, mask) if m]
 
 
-def _blended_propensity(result: BlendResult) -> np.ndarray:
-    """Probability-scale propensity at the chosen weights (first fold assignment). The logit
-    blend averages logits; the riesz and probability blends are shown as the probability
-    average (the riesz blend itself averages weight-side values, see the schema notes)."""
-    pi = result.crossfit.propensity[0]
-    alpha = result.alpha.to_numpy()
-    if result.settings.get("blend") == "logit":
-        return expit(logit(pi) @ alpha)
-    return pi @ alpha
-
-
-def _arm_weight_values(result: BlendResult) -> np.ndarray:
-    """Per-row weight-side magnitude sum_c |p_c(X_i) h1_c(O_i)| at the chosen weights."""
-    inp = result.analysis.inputs[0]
-    p_alpha = blended_weight_side(inp, result.alpha.to_numpy()[None, :], result.settings["blend"])
-    return sum(np.abs(p[:, 0] * h1) for p, h1 in zip(p_alpha, inp.h1))
-
-
-def effective_sample_size(weights: np.ndarray) -> float | None:
-    """Kish's effective sample size (sum w)^2 / sum w^2; None when every weight is zero."""
-    weights = np.asarray(weights, dtype=float)
-    total_sq = float(np.sum(weights**2))
-    if total_sq == 0.0:
-        return None
-    return float(np.sum(weights) ** 2 / total_sq)
-
-
 def _diagnostics(result: BlendResult) -> dict:
     cf, data = result.crossfit, result.data
-    clip = result.clip_counts
+    diag = result.diagnostics
     learners = [
         {
             "side": row["side"],
@@ -189,42 +156,31 @@ def _diagnostics(result: BlendResult) -> dict:
     for key, message in cf.failures.items():
         side, name = key.split(":", 1)
         failed.append({"side": side, "learner": name, "reason": message})
-    out = {
-        "clip": plain(cf.clip),
+    hist = diag.overlap_histogram
+    ranges = diag.propensity_range
+    return {
+        "clip": plain(diag.clip),
         "repeats": cf.repeats,
         "propensity_kind": cf.propensity_kind,
-        "clipping": {
-            str(name): {"low": int(lo), "high": int(hi)}
-            for name, (lo, hi) in zip(clip.index, clip.to_numpy())
+        "clipping": {name: {"low": lo, "high": hi} for name, (lo, hi) in diag.clipped.items()},
+        "arm_sizes": plain(diag.arm_sizes),
+        "propensity_range": None
+        if ranges is None
+        else {
+            arm: None if span is None else {"min": plain(span[0]), "max": plain(span[1])}
+            for arm, span in ranges.items()
         },
-        "arm_sizes": None,
-        "propensity_range": None,
-        "effective_sample_size": None,
-        "overlap_histogram": None,
+        "effective_sample_size": plain(diag.effective_sample_size),
+        "overlap_histogram": None
+        if hist is None
+        else {
+            "edges": plain(hist.edges),
+            "counts": {arm: plain(counts) for arm, counts in hist.counts.items()},
+        },
         "learners": learners,
         "failed_learners": failed,
         "notes": [str(note) for note in data.notes],
     }
-    if cf.propensity_kind != "classifier":
-        return out
-    pi = _blended_propensity(result)
-    w = _arm_weight_values(result)
-    arms = {"treated": data.A == 1, "control": data.A == 0}
-    out["arm_sizes"] = {arm: int(rows.sum()) for arm, rows in arms.items()}
-    out["propensity_range"] = {
-        arm: ({"min": plain(pi[rows].min()), "max": plain(pi[rows].max())} if rows.any() else None)
-        for arm, rows in arms.items()
-    }
-    out["effective_sample_size"] = {
-        arm: effective_sample_size(w[rows]) for arm, rows in arms.items()
-    }
-    out["overlap_histogram"] = {
-        "edges": plain(OVERLAP_EDGES),
-        "counts": {
-            arm: plain(np.histogram(pi[rows], bins=OVERLAP_EDGES)[0]) for arm, rows in arms.items()
-        },
-    }
-    return out
 
 
 def _bootstrap(result: BlendResult) -> dict | None:
@@ -358,298 +314,6 @@ def result_to_dict(result: BlendResult) -> dict:
         },
         "cautions": _cautions(result),
     }
-
-
-# --------------------------------------------------------------------------------- validation
-
-
-@dataclass(frozen=True)
-class _ListOf:
-    item: object
-
-
-@dataclass(frozen=True)
-class _MapOf:
-    value: object
-
-
-@dataclass(frozen=True)
-class _Maybe:
-    inner: object
-
-
-# Largest magnitude a saved number may have. Outcomes are limited to 1e100 (stackdr.data), so
-# estimates stay near that and squared quantities near 1e200; larger values can only come from a
-# damaged file, and the figures' arithmetic on them would overflow.
-_LARGEST_SAVED = 1e250
-
-_KIND_TEXT = {
-    "num": "a number",
-    "num?": "a number or null",
-    "int": "a whole number",
-    "str": "a string",
-    "bool": "true or false",
-    "any": "a JSON value",
-}
-_NUMS = _ListOf("num?")
-_WEIGHTS = {"propensity": _MapOf("num?"), "outcome": _MapOf("num?")}
-_LOW_HIGH = {"low": "num?", "high": "num?"}
-
-SPEC = {
-    "schema": "str",
-    "package_version": "str",
-    "target": {"name": "str", "description": "str"},
-    "n": "int",
-    "estimate": "num",
-    "se": "num?",
-    "interval": {"low": "num?", "high": "num?", "level": "num", "method": "str"},
-    "weights": _WEIGHTS,
-    "pair_table": {
-        "rows": _ListOf("str"),
-        "columns": _ListOf("str"),
-        "values": _ListOf(_NUMS),
-        "standard_errors": _ListOf(_NUMS),
-    },
-    "estimators": _ListOf(
-        {
-            "name": "str",
-            "kind": "str",
-            "estimate": "num?",
-            "se": "num?",
-            "low": "num?",
-            "high": "num?",
-            "interval_method": "str",
-            "wald_low": "num?",
-            "wald_high": "num?",
-            "bootstrap_se": "num?",
-            "pseudo_risk": "num?",
-            "weights": _WEIGHTS,
-        }
-    ),
-    "sensitivities": {
-        "outcome_direction": "num?",
-        "weight_direction": "num?",
-        "at_chosen_weights": {
-            "by_outcome_learner": _MapOf("num?"),
-            "by_propensity_learner": _MapOf("num?"),
-        },
-        "direction_learners": {"propensity": _ListOf("str"), "outcome": _ListOf("str")},
-    },
-    "pseudo_risk": "num?",
-    "tie_break": {
-        "enabled": "bool",
-        "scale": "num?",
-        "moved": "bool",
-        "steps": _ListOf(
-            {
-                "step": "str",
-                "side": "str",
-                "tolerance": "num?",
-                "bound": "num?",
-                "moved": "bool",
-                "anchor_feasible": _Maybe("bool"),
-                "distance_to_anchor": "num?",
-                "pure_distance_to_anchor": "num?",
-            }
-        ),
-    },
-    "solver_records": _ListOf(
-        {
-            "step": "str",
-            "method": "str",
-            "status": "str",
-            "seconds": "num?",
-            "objective": "num?",
-            "details": _MapOf("any"),
-        }
-    ),
-    "diagnostics": {
-        "clip": "num",
-        "repeats": "int",
-        "propensity_kind": "str",
-        "clipping": _MapOf({"low": "int", "high": "int"}),
-        "arm_sizes": _Maybe(_MapOf("int")),
-        "propensity_range": _Maybe(_MapOf(_Maybe({"min": "num?", "max": "num?"}))),
-        "effective_sample_size": _Maybe(_MapOf("num?")),
-        "overlap_histogram": _Maybe({"edges": _ListOf("num"), "counts": _MapOf(_ListOf("int"))}),
-        "learners": _ListOf(
-            {
-                "side": "str",
-                "learner": "str",
-                "loss": "num?",
-                "metric": "str",
-                "stacking_weight": "num?",
-                "fit_seconds": "num?",
-            }
-        ),
-        "failed_learners": _ListOf({"side": "str", "learner": "str", "reason": "str"}),
-        "notes": _ListOf("str"),
-    },
-    "bootstrap": _Maybe(
-        {
-            "kind": "str",
-            "method": "str",
-            "level": "num",
-            "replicates": "int",
-            "chunk_size": "int",
-            "estimates": _MapOf(_NUMS),
-            "intervals": _MapOf(_LOW_HIGH),
-            "standard_errors": _MapOf("num?"),
-            "weights": {"propensity": _MapOf(_NUMS), "outcome": _MapOf(_NUMS)},
-            "selection_frequency": _MapOf(
-                _MapOf({"share_weighted": "num?", "mean_weight": "num?"})
-            ),
-            "tie_break_share": "num?",
-            "seconds": _MapOf("num?"),
-        }
-    ),
-    "settings": _MapOf("any"),
-    "seed": _Maybe("int"),
-    "timings": _MapOf("num?"),
-    "data": {"treatment": "str", "outcome": "str", "covariates": _ListOf("str")},
-    "cautions": _ListOf("str"),
-}
-
-
-def _scalar_ok(value, kind: str) -> bool:
-    if kind == "any":
-        return _is_json(value)
-    if value is None:
-        return kind == "num?"
-    if kind in ("num", "num?"):
-        return (
-            isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value)
-        )
-    if kind == "int":
-        return isinstance(value, int) and not isinstance(value, bool)
-    if kind == "str":
-        return isinstance(value, str)
-    return isinstance(value, bool)
-
-
-def _is_json(value) -> bool:
-    if value is None or isinstance(value, (bool, str, int)):
-        return True
-    if isinstance(value, float):
-        return math.isfinite(value)
-    if isinstance(value, list):
-        return all(_is_json(v) for v in value)
-    if isinstance(value, dict):
-        return all(isinstance(k, str) and _is_json(v) for k, v in value.items())
-    return False
-
-
-def _type_name(value) -> str:
-    if isinstance(value, float) and not math.isfinite(value):
-        return repr(value)
-    return {type(None): "null", dict: "an object", list: "a list"}.get(
-        type(value), type(value).__name__
-    )
-
-
-def _check(value, spec, where: str) -> None:
-    if isinstance(spec, str):
-        if not _scalar_ok(value, spec):
-            raise InputError(f"{where} must be {_KIND_TEXT[spec]}, got {_type_name(value)}")
-        if spec in ("num", "num?") and value is not None and abs(value) > _LARGEST_SAVED:
-            raise InputError(
-                f"{where} is {value:.3g}, beyond the largest magnitude a results file holds "
-                f"({_LARGEST_SAVED:g})"
-            )
-    elif isinstance(spec, _Maybe):
-        if value is not None:
-            _check(value, spec.inner, where)
-    elif isinstance(spec, _ListOf):
-        if not isinstance(value, list):
-            raise InputError(f"{where} must be a list, got {_type_name(value)}")
-        for i, item in enumerate(value):
-            _check(item, spec.item, f"{where}[{i}]")
-    elif isinstance(spec, _MapOf):
-        if not isinstance(value, dict):
-            raise InputError(f"{where} must be an object, got {_type_name(value)}")
-        for key, item in value.items():
-            _check(item, spec.value, f"{where}[{json.dumps(key)}]")
-    else:
-        if not isinstance(value, dict):
-            raise InputError(f"{where} must be an object, got {_type_name(value)}")
-        for key, sub in spec.items():
-            if key not in value:
-                raise InputError(f"{where} is missing the key {key!r}")
-            _check(value[key], sub, f"{where}.{key}" if where else key)
-
-
-def _require(condition: bool, message: str) -> None:
-    if not condition:
-        raise InputError(message)
-
-
-def _check_shapes(d: dict) -> None:
-    """Cross-field consistency that the report relies on."""
-    table = d["pair_table"]
-    rows, cols = table["rows"], table["columns"]
-    _require(bool(rows) and bool(cols), "pair_table needs at least one row and one column")
-    for key in ("values", "standard_errors"):
-        shape_ok = len(table[key]) == len(rows) and all(len(r) == len(cols) for r in table[key])
-        _require(shape_ok, f"pair_table.{key} must be {len(rows)} x {len(cols)} (rows x columns)")
-    sides = {"propensity": rows, "outcome": cols}
-
-    def same_learners(weights: dict, where: str) -> None:
-        for side, names in sides.items():
-            _require(
-                list(weights[side]) == names,
-                f"{where}.{side} must name the learners of the pair table in the same order",
-            )
-
-    same_learners(d["weights"], "weights")
-    _require(bool(d["estimators"]), "estimators must list at least one estimator")
-    for i, row in enumerate(d["estimators"]):
-        same_learners(row["weights"], f"estimators[{i}].weights")
-    clip = d["diagnostics"]["clip"]
-    _require(0 <= clip < 0.5, f"diagnostics.clip must be in [0, 0.5), got {clip!r}")
-    hist = d["diagnostics"]["overlap_histogram"]
-    if hist is not None:
-        for arm, counts in hist["counts"].items():
-            _require(
-                len(counts) == len(hist["edges"]) - 1,
-                f"diagnostics.overlap_histogram.counts[{json.dumps(arm)}] must have one count "
-                "per bin",
-            )
-    boot = d["bootstrap"]
-    if boot is not None:
-        reps = boot["replicates"]
-        lists = [(f"estimates[{json.dumps(k)}]", v) for k, v in boot["estimates"].items()]
-        for side in ("propensity", "outcome"):
-            lists += [
-                (f"weights.{side}[{json.dumps(k)}]", v) for k, v in boot["weights"][side].items()
-            ]
-        for where, values in lists:
-            _require(len(values) == reps, f"bootstrap.{where} must hold {reps} replicate values")
-
-
-def validate_results(d: dict) -> None:
-    """Check a results dict against the schema; raise InputError with a one-line reason.
-
-    Parameters
-    ----------
-    d : dict
-        A results document (from :func:`result_to_dict` or :func:`read_results_json`).
-
-    Raises
-    ------
-    InputError
-        Wrong schema version, a missing key, a value of the wrong type (NaN and infinities
-        included) or tables whose shapes disagree.
-    """
-    if not isinstance(d, dict):
-        raise InputError(f"results must be a JSON object, got {_type_name(d)}")
-    if "schema" not in d:
-        raise InputError("results are missing the key 'schema'")
-    if d["schema"] != SCHEMA:
-        raise InputError(
-            f"unsupported results schema {d['schema']!r}; this version reads {SCHEMA!r}"
-        )
-    _check(d, SPEC, "")
-    _check_shapes(d)
 
 
 # ------------------------------------------------------------------------------------- files

@@ -1,4 +1,7 @@
-"""Figures of a saved result, drawn only from the results dict (see :mod:`stackdr.serialise`).
+"""Figures of a saved result, drawn only from the results dict (see :mod:`stackdr.io`).
+
+The figures draw; the maths they show comes from the core (:func:`stackdr.core.value_range`,
+:func:`stackdr.search.simplex_lattice`) or is stored in the results.
 
 Every figure is a :class:`matplotlib.figure.Figure` made without pyplot (no global state, no
 display needed) inside a fixed style, and rendered to PNG bytes without timestamps or version
@@ -16,6 +19,9 @@ import numpy as np
 from matplotlib.figure import Figure
 from matplotlib.ticker import MaxNLocator
 from matplotlib.tri import Triangulation
+
+from stackdr.core import value_range
+from stackdr.search import simplex_lattice
 
 STYLE = {
     "font.size": 9.5,
@@ -72,13 +78,7 @@ def _by_kind(results: dict, kind: str) -> dict | None:
     return next((row for row in results["estimators"] if row["kind"] == kind), None)
 
 
-# ------------------------------------------------------------------------------ landscape maths
-
-
-def value_range(values: np.ndarray, mask: np.ndarray | None = None) -> np.ndarray:
-    """Row-wise max - min over the columns selected by ``mask`` (all when None)."""
-    sub = values if mask is None else values[:, mask]
-    return sub.max(axis=1) - sub.min(axis=1)
+# ------------------------------------------------------------------------------ landscape
 
 
 def ternary_surface(V: np.ndarray, mask=None, resolution: int = TERNARY_RESOLUTION):
@@ -91,14 +91,13 @@ def ternary_surface(V: np.ndarray, mask=None, resolution: int = TERNARY_RESOLUTI
     mask : boolean ndarray (m,), optional
         Direction learners over which the range is taken.
     resolution : int
-        Lattice denominator; weights are (i, j, r - i - j) / r.
+        Lattice denominator: weights with coordinates in {0, 1/r, ..., 1}.
 
     Returns
     -------
     weights : ndarray (p, 3), values : ndarray (p,)
     """
-    r = int(resolution)
-    weights = np.array([(i, j, r - i - j) for i in range(r + 1) for j in range(r + 1 - i)]) / r
+    weights = simplex_lattice(3, int(resolution))
     return weights, value_range(weights @ V, mask)
 
 

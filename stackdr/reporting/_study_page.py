@@ -1,15 +1,13 @@
 """Readable summaries of a Monte Carlo study: aligned text, markdown and a self-contained HTML
 page with embedded figures.
 
-Every number comes from :func:`stackdr.study.summarise_study` (performance per design, sample
-size and estimator, each with its Monte Carlo standard error) and :func:`stackdr.study.read_results`
-(replicate-level errors and chosen weights).
+Every number comes from :func:`stackdr.studies.summarise_study` (performance per design, sample
+size and estimator, each with its Monte Carlo standard error) and
+:func:`stackdr.studies.read_results` (replicate-level errors and chosen weights).
 """
 
 from __future__ import annotations
 
-import base64
-import html
 import json
 import math
 from pathlib import Path
@@ -26,6 +24,7 @@ from stackdr.reporting._figures import (
     label,
     render_png,
 )
+from stackdr.reporting._html import escape, figure, page, paragraph, table
 from stackdr.search import ESTIMATOR_ORDER
 from stackdr.studies import read_results, read_study_record, summarise_study
 
@@ -144,30 +143,12 @@ def ordered(summary: pd.DataFrame) -> pd.DataFrame:
 
 # ---------------------------------------------------------------------------------------- HTML
 
-_CSS = """
-body { font-family: system-ui, sans-serif; max-width: 1100px; margin: 2em auto; color: #222; }
-table { border-collapse: collapse; font-size: 0.85em; margin: 0.6em 0 1.2em; }
-th, td { border: 1px solid #ccc; padding: 0.25em 0.5em; text-align: right; }
-th:first-child, td:first-child { text-align: left; }
-figure { margin: 1em 0; } figcaption { font-size: 0.85em; color: #555; }
-pre { background: #f6f6f6; padding: 0.6em; font-size: 0.8em; overflow-x: auto; }
-.note { font-size: 0.9em; color: #444; }
-"""
-
 
 def _level(record: dict) -> float:
     settings = record.get("settings", {})
     estimator = settings.get("estimator", settings) if isinstance(settings, dict) else {}
     level = estimator.get("level", 0.95) if isinstance(estimator, dict) else 0.95
     return float(level)
-
-
-def _png_tag(fig, caption: str) -> str:
-    data = base64.b64encode(render_png(fig)).decode("ascii")
-    return (
-        f'<figure><img src="data:image/png;base64,{data}" alt="{html.escape(caption)}">'
-        f"<figcaption>{html.escape(caption)}</figcaption></figure>"
-    )
 
 
 def error_figure(results: pd.DataFrame, names: list[str]):
@@ -243,15 +224,16 @@ def weight_figure(results: pd.DataFrame):
 def html_report(path: str | Path, summary: pd.DataFrame | None = None) -> str:
     """A self-contained HTML page for a study file: settings, the summary table with Monte Carlo
     SEs, and per design and n the error distributions, coverage with Monte Carlo error bars and
-    the distribution of target-aimed stacking's chosen weights. Figures are embedded PNGs; all
-    text is HTML-escaped.
+    the distribution of target-aimed stacking's chosen weights. Built with the same page shell,
+    style and escaping as the fit report (:mod:`._html`): figures are embedded PNGs, all text is
+    HTML-escaped, nothing is loaded from elsewhere.
 
     Parameters
     ----------
     path : str or pathlib.Path
         Study file.
     summary : DataFrame, optional
-        :func:`stackdr.study.summarise_study` output (computed when not given).
+        :func:`stackdr.studies.summarise_study` output (computed when not given).
 
     Returns
     -------
@@ -261,37 +243,51 @@ def html_report(path: str | Path, summary: pd.DataFrame | None = None) -> str:
     summary = ordered(summarise_study(path) if summary is None else summary)
     results = read_results(path)
     level = _level(record)
-    esc = html.escape
     parts = [
-        "<!DOCTYPE html><html><head><meta charset='utf-8'>",
-        f"<title>stackdr study: {esc(str(path))}</title><style>{_CSS}</style></head><body>",
-        f"<h1>Monte Carlo study {esc(Path(path).name)}</h1>",
-        "<p class='note'>Values are Monte Carlo estimates with their Monte Carlo standard "
-        "errors in parentheses; coverage is of each estimator's stored interval (bootstrap when "
-        "the study ran one, else Wald).</p>",
-        "<h2>Settings</h2>",
-        f"<pre>{esc(json.dumps(record, indent=2, sort_keys=True))}</pre>",
+        paragraph(
+            "Values are Monte Carlo estimates with their Monte Carlo standard errors in "
+            "parentheses; coverage is of each estimator's stored interval (bootstrap when the "
+            "study ran one, else Wald)."
+        ),
+        "<h2>Settings</h2>\n",
+        f"<pre>{escape(json.dumps(record, indent=2, sort_keys=True))}</pre>\n",
     ]
     with figure_style():
         for (design, n), group in summary.groupby(["design", "n"], sort=False):
             truth = group["truth"].iloc[0]
             parts.append(
-                f"<h2>{esc(str(design))}, n = {int(n)} "
-                f"(target {esc(str(group['target'].iloc[0]))}, truth {truth:g})</h2>"
+                f"<h2>{escape(design)}, n = {int(n)} "
+                f"(target {escape(group['target'].iloc[0])}, truth {truth:g})</h2>\n"
             )
+            shown = display_table(group).drop(columns=["design", "n"])
+            measures = [c for c in shown.columns if c != "estimator"]
+            rows = shown.itertuples(index=False)
             parts.append(
-                display_table(group).drop(columns=["design", "n"]).to_html(index=False, escape=True)
+                '<div class="wide">'
+                + table(list(shown.columns), rows, align_right=measures)
+                + "</div>\n"
             )
-            rows = results[(results["design"] == design) & (results["n"] == n)]
+            replicates = results[(results["design"] == design) & (results["n"] == n)]
             names = list(group["estimator"])
-            parts.append(_png_tag(error_figure(rows, names), "Error distribution per estimator"))
             parts.append(
-                _png_tag(coverage_figure(group, level), "Interval coverage with Monte Carlo error")
+                figure(
+                    render_png(error_figure(replicates, names)), "Error distribution per estimator"
+                )
             )
-            weights = weight_figure(rows)
+            parts.append(
+                figure(
+                    render_png(coverage_figure(group, level)),
+                    "Interval coverage with Monte Carlo error",
+                )
+            )
+            weights = weight_figure(replicates)
             if weights is not None:
                 parts.append(
-                    _png_tag(weights, "Weights chosen by target-aimed stacking across replicates")
+                    figure(
+                        render_png(weights),
+                        "Weights chosen by target-aimed stacking across replicates",
+                    )
                 )
-    parts.append("</body></html>")
-    return "\n".join(parts)
+    return page(
+        f"stackdr study: {path}", "".join(parts), heading=f"Monte Carlo study {Path(path).name}"
+    )

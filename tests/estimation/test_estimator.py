@@ -74,9 +74,11 @@ def test_comparison_table_and_summary(capsys):
     prop = {"logit": LogisticRegression(), "flat": DummyClassifier(strategy="prior")}
     outc = {"ols": LinearRegression(), "mean": DummyRegressor()}
     res = BlendEstimator("att", prop, outc, bootstrap=0).fit(X, A, Y)
-    table = res.summary()
-    printed = capsys.readouterr().out
+    summary = res.summary()
+    assert capsys.readouterr().out == ""  # a table object, printed only when asked
+    printed = str(summary)
     assert "target-aimed stacking" in printed and "Caution" in printed
+    table = summary.as_frame()
     names = set(table["estimator"])
     assert {
         "target-aimed stacking",

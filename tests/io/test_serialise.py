@@ -7,9 +7,9 @@ import numpy as np
 import pytest
 
 from stackdr import InputError
+from stackdr.estimation import effective_sample_size
 from stackdr.io import (
     SCHEMA,
-    effective_sample_size,
     plain,
     read_results_json,
     result_to_dict,
@@ -158,6 +158,32 @@ def _mutations():
             lambda d: next(iter(d["bootstrap"]["estimates"].values())).pop(),
             "must hold 50 replicate values",
         ),
+        (setter(["estimate"], 1e300), r"estimate is 1e\+300, beyond the largest magnitude"),
+        (setter(["estimate"], 10**400), r"estimate is about 1e\+400, beyond the largest"),
+        (setter(["diagnostics", "clip"], 0.5), "diagnostics.clip must be below 0.5, got 0.5"),
+        (setter(["diagnostics", "clip"], -0.1), "diagnostics.clip must be at least 0"),
+        (setter(["pair_table", "rows"], []), "pair_table.rows must hold at least 1 item"),
+        (setter(["estimators"], []), "estimators must hold at least 1 item"),
+        (setter(["settings", "blend"], np.nan), r'settings\["blend"\] must be a JSON value'),
+        (setter(["settings", "extra"], {1: "a"}), r'settings\["extra"\] has a key of type int'),
+        (setter(["seed"], 1.0), "seed must be a whole number or null, got float"),
+        (
+            setter(["diagnostics", "clipping", "constant", "low"], 2.0),
+            r'diagnostics.clipping\["constant"\].low must be a whole number, got float',
+        ),
+        (
+            setter(["bootstrap", "intervals", "minimax pair", "high"], "1"),
+            r'intervals\["minimax pair"\].high must be a number or null, got str',
+        ),
+        (
+            setter(["bootstrap", "selection_frequency", "outcome", "mean"], {"share_weighted": 1}),
+            r'selection_frequency\["outcome"\]\["mean"\] is missing the key .mean_weight.',
+        ),
+        (
+            lambda d: d["diagnostics"]["overlap_histogram"]["counts"]["treated"].pop(),
+            r'overlap_histogram.counts\["treated"\] must have one count per bin',
+        ),
+        (lambda d: d["target"].pop("name"), "target is missing the key 'name'"),
     ]
 
 

@@ -27,6 +27,7 @@ from stackdr.reporting._figures import (
     ternary_surface,
     ternary_xy,
 )
+from stackdr.reporting._html import CONTENT_POLICY, CSS
 from tests.helpers import MATH, SCRIPT, SHELL, confounded_data, hostile_fit
 
 # MATH has no HTML-special characters; it checks that figures escape mathtext instead.
@@ -95,10 +96,15 @@ def test_report_has_every_section_and_one_image_per_figure(report_dir):
     embedded = {base64.b64decode(img["src"].split(",", 1)[1]) for img in parser.images}
     assert embedded == {p.read_bytes() for p in pngs}
     assert all(img["src"].startswith("data:image/png;base64,") for img in parser.images)
-    # Self-contained: no scripts, links to style sheets or remote resources.
+    # Self-contained: no scripts, links to style sheets or remote resources, and a content
+    # policy telling the browser to load nothing else.
     assert not {"script", "link", "iframe"} & set(parser.tags)
     assert "http://" not in page and "https://" not in page
+    assert f'content="{CONTENT_POLICY}"' in page and f"<style>{CSS}</style>" in page
     assert "bootstrap percentile interval from 50 multinomial" in page
+    # The standing caution: the assumptions of a causal reading, and review stays with people.
+    assert "consistency, no unmeasured confounding and positivity" in page
+    assert "does not replace, subject-matter" in page
 
 
 def test_user_text_appears_only_escaped(report_dir):
@@ -119,8 +125,8 @@ def test_rebuild_from_saved_json_is_byte_identical(results, report_dir, tmp_path
     again = tmp_path / "again"
     # A fresh interpreter, as a command-line rebuild would be.
     code = (
-        "import sys; from stackdr.reporting._fit_page import write_report; "
-        "from stackdr.io._results_json import read_results_json; "
+        "import sys; from stackdr.reporting import write_report; "
+        "from stackdr.io import read_results_json; "
         "write_report(read_results_json(sys.argv[1]), sys.argv[2], title=sys.argv[3])"
     )
     title = f"Study {SCRIPT} {SHELL}"
