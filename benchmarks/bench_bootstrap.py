@@ -25,9 +25,6 @@ import time
 import warnings
 from pathlib import Path
 
-for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-    os.environ.setdefault(_var, "1")
-
 import numpy as np  # noqa: E402
 from scipy.special import expit, logit  # noqa: E402
 

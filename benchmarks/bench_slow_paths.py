@@ -24,9 +24,6 @@ import time
 import warnings
 from pathlib import Path
 
-for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-    os.environ.setdefault(_var, "1")
-
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from common import RESULTS, print_table, write_json  # noqa: E402
 

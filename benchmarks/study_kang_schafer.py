@@ -20,14 +20,9 @@ Usage: .venv/bin/python benchmarks/study_kang_schafer.py [--stages 25 50 100 200
 from __future__ import annotations
 
 import argparse
-import os
 import sys
 import time
 from pathlib import Path
-
-# One thread per process: the machine's two cores are shared with other jobs.
-for _var in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
-    os.environ.setdefault(_var, "1")
 
 import numpy as np  # noqa: E402
 import pandas as pd  # noqa: E402

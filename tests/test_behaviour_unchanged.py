@@ -3,8 +3,9 @@ was reorganised into subpackages (recorded at commit c82f2bd, file
 ``tests/data/results_before_restructure.json``; floats stored as ``float.hex``).
 
 The numbers were recorded with one native thread; BLAS with several threads changes the
-summation order of the bootstrap's matrix products (last-digit differences), so every check
-runs under a one-thread limit (threadpoolctl). The settings that later releases may change
+summation order of the bootstrap's matrix products (last-digit differences). The estimator's
+own thread budget (one native thread per fit unless ``threads`` is set) gives exactly that
+limit. The settings that later releases may change
 (blend, tie-break scale) are pinned here to their values at that commit, so this test keeps
 guarding the moved code paths.
 """
@@ -17,7 +18,6 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from threadpoolctl import threadpool_limits
 
 from stackdr import BlendEstimator
 from stackdr.studies import get_design, simulate_demo, simulate_replicate
@@ -29,12 +29,6 @@ PINNED = {"blend": "riesz", "tie_break_scale": 0.5}
 NSW_COVARIATES = ["age", "educ", "black", "hisp", "marr", "nodegree", "re74", "re75"]
 
 pytestmark = pytest.mark.slow
-
-
-@pytest.fixture(autouse=True)
-def one_thread():
-    with threadpool_limits(1):
-        yield
 
 
 def _rows(result) -> list[dict]:

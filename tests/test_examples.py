@@ -16,7 +16,7 @@ pytestmark = pytest.mark.slow
 
 @pytest.fixture(scope="module")
 def outputs():
-    env = {**os.environ, "STACKDR_EXAMPLE_SMALL": "1", "OMP_NUM_THREADS": "1"}
+    env = {**os.environ, "STACKDR_EXAMPLE_SMALL": "1"}
     procs = {
         name: subprocess.Popen(
             [sys.executable, str(EXAMPLES / name)],

@@ -21,7 +21,16 @@ from stackdr.estimation._learners import (
     parametric_outcome_library,
     parametric_propensity_library,
 )
-from stackdr.estimation._parallel import check_cluster, dask_backend, dask_jobs, parallel_backend
+from stackdr.estimation._parallel import (
+    available_cores,
+    check_cluster,
+    dask_backend,
+    dask_jobs,
+    native_threads,
+    parallel_backend,
+    threads_per_fit,
+    worker_count,
+)
 from stackdr.estimation._results import CAUTION, BlendResult, EstimatorRow, ResultSummary
 from stackdr.estimation._settings import (
     BOOTSTRAP_KINDS,
@@ -39,6 +48,10 @@ from stackdr.estimation._settings import (
 )
 
 __all__ = [
+    "available_cores",
+    "native_threads",
+    "threads_per_fit",
+    "worker_count",
     "BOOTSTRAP_KINDS",
     "BlendEstimator",
     "BlendResult",

@@ -18,6 +18,7 @@ from sklearn.model_selection import KFold, StratifiedKFold
 from stackdr.core import Target
 from stackdr.errors import InputError, LearnerError, PositivityWarning
 from stackdr.estimation._data import PreparedData
+from stackdr.estimation._parallel import native_threads, threads_per_fit
 from stackdr.estimation._settings import validate_params
 
 
@@ -128,14 +129,17 @@ def _predict(est, X, kind):
     return np.asarray(est.predict(X), dtype=float).reshape(-1)
 
 
-def _fit_and_predict(estimator, X_train, y_train, test_inputs, kind):
-    """One task: fit a clone, predict on each test input. Errors are returned, not raised, so
-    the caller can name the learner and apply the library's failure policy."""
+def _fit_and_predict(estimator, X_train, y_train, test_inputs, kind, threads: int = 1):
+    """One task: fit a clone, predict on each test input, with at most ``threads`` native
+    threads (the cap applies wherever the task runs: this process, a local worker or a dask
+    worker). Errors are returned, not raised, so the caller can name the learner and apply the
+    library's failure policy."""
     start = time.perf_counter()
     try:
-        est = clone(estimator)
-        est.fit(X_train, y_train)
-        preds = [_predict(est, X, kind) for X in test_inputs]
+        with native_threads(threads):
+            est = clone(estimator)
+            est.fit(X_train, y_train)
+            preds = [_predict(est, X, kind) for X in test_inputs]
         for X, p in zip(test_inputs, preds):
             if p.shape != (X.shape[0],):
                 raise ValueError(f"returned {p.shape[0]} predictions for {X.shape[0]} rows")
@@ -148,6 +152,31 @@ def _fit_and_predict(estimator, X_train, y_train, test_inputs, kind):
         return preds, time.perf_counter() - start, None
     except Exception as exc:  # noqa: BLE001 - any learner failure is reported by name
         return None, time.perf_counter() - start, f"{type(exc).__name__}: {exc}"
+
+
+# Relative cost per training row of a fit, by the kind of model (measured on the default
+# library: bagged full trees and boosting dominate, linear models are cheap). Unknown learners
+# count as medium; only the order of dispatch depends on it.
+_COST_BY_KIND = (
+    (("Forest", "Trees", "Bagging"), 10.0),
+    (("Boosting",), 4.0),
+    (("Neighbors", "SVC", "SVR", "Kernel", "MLP"), 3.0),
+    (("Spline", "Polynomial"), 2.0),
+    (("Dummy",), 0.05),
+)
+
+
+def expected_cost(estimator, rows: int) -> float:
+    """A rough relative cost of fitting ``estimator`` on ``rows`` rows, used only to order the
+    dispatch of fits (longest first). Pipelines count every step."""
+    steps = getattr(estimator, "steps", None)
+    parts = [step for _, step in steps] if steps else [estimator]
+    total = 0.0
+    for part in parts:
+        name = type(part).__name__
+        weight = next((w for keys, w in _COST_BY_KIND if any(k in name for k in keys)), 1.0)
+        total += weight
+    return total * rows
 
 
 def cross_fit(
@@ -163,6 +192,7 @@ def cross_fit(
     outcome_mode: str = "separate",
     on_error: str = "drop",
     n_jobs: int | None = 1,
+    threads: int | None = None,
     progress: bool = False,
 ) -> CrossFitResult:
     """Fit every learner on every training split and collect out-of-fold predictions.
@@ -188,6 +218,15 @@ def cross_fit(
         What to do with a learner that fails in any fold.
     n_jobs : int
         joblib workers.
+    threads : int, optional
+        Native threads per learner fit (default one; see
+        :func:`~stackdr.estimation.threads_per_fit`).
+
+    Notes
+    -----
+    The (learner x fold) fits are dispatched longest-expected-first (:func:`expected_cost`), so
+    the slowest learner's last fold does not run alone at the end; results are collected by
+    task, so the order changes no number.
     """
     validate_params({"outcome_mode": outcome_mode, "on_error": on_error, "clip": clip})
     X, A, Y = data.X, data.A, data.Y
@@ -210,26 +249,35 @@ def cross_fit(
                             f"{int(arm)} for training; use fewer folds"
                         )
 
-    tasks, keys = [], []
+    per_fit = threads_per_fit(n_jobs, threads)
+    tasks, keys, costs = [], [], []
     for r in range(labels.shape[0]):
         for s in range(n_folds):
             test = np.arange(n) if in_sample else np.flatnonzero(labels[r] == s)
             train = np.arange(n) if in_sample else np.flatnonzero(labels[r] != s)
             for name, est in propensity_library.items():
                 tasks.append(
-                    delayed(_fit_and_predict)(est, X[train], A[train], [X[test]], prop_kind)
+                    delayed(_fit_and_predict)(
+                        est, X[train], A[train], [X[test]], prop_kind, per_fit
+                    )
                 )
                 keys.append(("propensity", name, r, test, None))
+                costs.append(expected_cost(est, train.size))
             for name, est in outcome_library.items():
                 for fit_rows, inputs, unit_heads in _outcome_units(
                     X, A, train, test, needed, heads, outcome_mode
                 ):
                     tasks.append(
                         delayed(_fit_and_predict)(
-                            est, inputs[0], Y[fit_rows], inputs[1], "regressor"
+                            est, inputs[0], Y[fit_rows], inputs[1], "regressor", per_fit
                         )
                     )
                     keys.append(("outcome", name, r, test, unit_heads))
+                    costs.append(expected_cost(est, fit_rows.size))
+    # Longest expected first (stable, so equal costs keep their natural order).
+    order = sorted(range(len(tasks)), key=lambda i: -costs[i])
+    tasks = [tasks[i] for i in order]
+    keys = [(i, *keys[i]) for i in order]
 
     results = Parallel(n_jobs=n_jobs, return_as="generator")(tasks)
     if progress:
@@ -240,14 +288,16 @@ def cross_fit(
     R = labels.shape[0]
     prop = {name: np.full((R, n), np.nan) for name in propensity_library}
     outc = {name: {h: np.full((R, n), np.nan) for h in heads} for name in outcome_library}
-    failures: dict[str, str] = {}
+    # A learner's reported failure is its first in fold order, whatever the dispatch order.
+    first_failure: dict[str, tuple[int, str]] = {}
     seconds: dict[str, float] = {}
     # results first: the progress bar only closes when its generator is exhausted.
-    for (preds, secs, err), (side, name, r, test, unit_heads) in zip(results, keys):
+    for (preds, secs, err), (index, side, name, r, test, unit_heads) in zip(results, keys):
         key = f"{side}:{name}"
         seconds[key] = seconds.get(key, 0.0) + secs
         if err is not None:
-            failures.setdefault(key, err)
+            if key not in first_failure or index < first_failure[key][0]:
+                first_failure[key] = (index, err)
             continue
         if side == "propensity":
             prop[name][r, test] = preds[0]
@@ -255,6 +305,7 @@ def cross_fit(
             for head, p in zip(unit_heads, preds):
                 outc[name][head][r, test] = p
 
+    failures = {key: msg for key, (_, msg) in sorted(first_failure.items(), key=lambda kv: kv[1])}
     for key, msg in failures.items():
         side, name = key.split(":", 1)
         text = f"{side} learner {name!r} failed and was dropped: {msg}"

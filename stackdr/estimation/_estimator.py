@@ -36,7 +36,13 @@ from stackdr.estimation._learners import (
     default_outcome_library,
     default_propensity_library,
 )
-from stackdr.estimation._parallel import check_cluster, dask_jobs, parallel_backend
+from stackdr.estimation._parallel import (
+    check_cluster,
+    dask_jobs,
+    native_threads,
+    parallel_backend,
+    threads_per_fit,
+)
 from stackdr.estimation._results import BlendResult, EstimatorRow
 from stackdr.estimation._settings import settings_record, validate_params
 from stackdr.inference import InferenceSettings, refit_bootstrap, reweighting_bootstrap
@@ -114,6 +120,10 @@ class BlendEstimator(BaseEstimator):
         Seeds folds and bootstrap.
     n_jobs : int
         joblib workers for learner fits.
+    threads : int
+        Native (OpenMP/BLAS) threads per learner fit and for this process's own work, so a
+        run occupies ``n_jobs x threads`` cores and two runs on one machine do not
+        oversubscribe it.
     progress : bool
         Show progress bars.
     backend : None or "dask"
@@ -149,6 +159,7 @@ class BlendEstimator(BaseEstimator):
         chunk_size: int | None = None,
         seed: int = 0,
         n_jobs: int | None = 1,
+        threads: int = 1,
         progress: bool = False,
         backend: str | None = None,
         cluster=None,
@@ -174,6 +185,7 @@ class BlendEstimator(BaseEstimator):
         self.chunk_size = chunk_size
         self.seed = seed
         self.n_jobs = n_jobs
+        self.threads = threads
         self.progress = progress
         self.backend = backend
         self.cluster = cluster
@@ -193,6 +205,12 @@ class BlendEstimator(BaseEstimator):
         covariates : list of column names, optional (default: all other columns)
         """
         self._validate_params()
+        # The process's own native work (stacking, bootstrap matrix products) and every learner
+        # fit run under the thread budget (threads_per_fit).
+        with native_threads(threads_per_fit(self.n_jobs, self.threads)):
+            return self._fit(data, treatment, outcome, covariates)
+
+    def _fit(self, data, treatment, outcome, covariates) -> BlendResult:
         start = time.perf_counter()
         target = get_target(self.target)
         n_folds = self.folds if np.isscalar(self.folds) else 2
@@ -230,6 +248,7 @@ class BlendEstimator(BaseEstimator):
             outcome_mode=self.outcome_mode,
             on_error=self.on_error,
             n_jobs=n_jobs,
+            threads=self.threads,
             progress=progress,
         )
 

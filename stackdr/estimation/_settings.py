@@ -271,6 +271,16 @@ _TABLE = (
         metavar="J",
         optional_none=True,
     ),
+    Setting(
+        "threads",
+        1,
+        "whole",
+        "native (OpenMP/BLAS) threads per learner fit; a run uses jobs x threads cores",
+        low=1,
+        recorded=False,
+        study=False,
+        metavar="T",
+    ),
     Setting("progress", False, "switch", "show progress bars", recorded=False, study=False),
     Setting(
         "backend",

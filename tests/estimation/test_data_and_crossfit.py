@@ -11,7 +11,7 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 
 from stackdr.core import get_target
 from stackdr.errors import InputError, LearnerError
-from stackdr.estimation import cross_fit, make_folds, prepare_data
+from stackdr.estimation import BlendEstimator, cross_fit, make_folds, prepare_data
 from tests.helpers import confounded_data
 
 
@@ -164,3 +164,57 @@ def test_pooled_and_separate_outcome_modes(frame):
     pooled = cross_fit(d, ATE, plib, {"m": DummyRegressor()}, outcome_mode="pooled", folds=1)
     np.testing.assert_allclose(sep.outcome["mu1"][0, :, 0], d.Y[d.A == 1].mean())
     np.testing.assert_allclose(pooled.outcome["mu1"][0, :, 0], d.Y.mean())
+
+
+class _ThreadRecorder(LinearRegression):
+    """Records the native thread limits in force while it is fitted."""
+
+    seen: list = []
+
+    def fit(self, X, y):
+        from threadpoolctl import threadpool_info
+
+        pools = {pool["user_api"]: pool["num_threads"] for pool in threadpool_info()}
+        type(self).seen.append(pools)
+        return super().fit(X, y)
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_every_fit_runs_under_the_thread_budget(threads):
+    X, A, Y, _ = confounded_data(np.random.default_rng(3), 200)
+    _ThreadRecorder.seen = []
+    BlendEstimator(
+        "ate",
+        {"logit": LogisticRegression()},
+        {"rec": _ThreadRecorder()},
+        bootstrap=0,
+        threads=threads,
+    ).fit(X, A, Y)
+    assert _ThreadRecorder.seen, "the recorder was not fitted"
+    expected = threads
+    for pools in _ThreadRecorder.seen:
+        assert all(n <= expected for n in pools.values()), pools
+
+
+def test_dispatch_order_is_longest_first_and_changes_no_number(monkeypatch):
+    from sklearn.ensemble import RandomForestRegressor
+
+    from stackdr.estimation import _crossfit
+
+    forest = RandomForestRegressor(n_estimators=5, random_state=0)
+    assert _crossfit.expected_cost(forest, 100) > _crossfit.expected_cost(LinearRegression(), 100)
+    X, A, Y, _ = confounded_data(np.random.default_rng(4), 200)
+    estimator = BlendEstimator(
+        "ate",
+        {"logit": LogisticRegression()},
+        {"ols": LinearRegression(), "forest": forest},
+        bootstrap=0,
+        seed=1,
+    )
+    sorted_run = estimator.fit(X, A, Y)
+    monkeypatch.setattr(_crossfit, "expected_cost", lambda estimator, rows: 0.0)
+    natural_run = estimator.fit(X, A, Y)
+    assert sorted_run.estimate == natural_run.estimate
+    np.testing.assert_array_equal(
+        sorted_run.crossfit.outcome["mu1"], natural_run.crossfit.outcome["mu1"]
+    )
