@@ -9,9 +9,10 @@ import numpy as np
 
 from stackdr.errors import InputError
 from stackdr.studies._design_library import BUILT_IN
+from stackdr.studies._design_library_added import ADDED_DESIGNS
 from stackdr.studies._designs import Design, DesignData, check_target
 
-_REGISTRY: dict[str, Design] = {design.name: design for design in BUILT_IN}
+_REGISTRY: dict[str, Design] = {design.name: design for design in (*BUILT_IN, *ADDED_DESIGNS)}
 
 
 def list_designs() -> list[str]:

@@ -105,29 +105,40 @@ def test_estimates_scale_with_the_outcome(seed, target, scale):
 
 
 @FITS
-@given(seed=seeds, target=targets, scale=scales, shift=shifts)
-def test_affine_outcome_changes_without_tie_break(seed, target, scale, shift):
+@given(
+    seed=seeds,
+    target=targets,
+    scale=scales,
+    shift=shifts,
+    blend=st.sampled_from(["riesz", "probability"]),
+)
+def test_affine_outcome_changes_without_tie_break(seed, target, scale, shift, blend):
     # Effects scale and the shift cancels; counterfactual means scale and shift. Every row but
     # prediction-loss stacking, whose NNLS weights are not shift-invariant (README limits).
+    # The riesz search is an exact LP; the probability blend's lattice search and polish stop
+    # at a numerical tolerance, so its weights (and estimates) agree to about 1e-5 relative.
     frame = data(seed)
-    base = fit(frame, target, tie_break=False)
-    moved = fit(frame.assign(y=scale * frame.y + shift), target, tie_break=False)
+    base = fit(frame, target, tie_break=False, blend=blend)
+    moved = fit(frame.assign(y=scale * frame.y + shift), target, tie_break=False, blend=blend)
     keep = [row.name != PLS for row in base.estimators]
     expected = scale * estimates(base)[keep] + (shift if _is_mean(target) else 0.0)
     size = abs(scale) * np.abs(estimates(base)).max() + abs(shift)
-    np.testing.assert_allclose(estimates(moved)[keep], expected, rtol=1e-6, atol=1e-9 * size)
-    assert moved.se == pytest.approx(abs(scale) * base.se, rel=1e-6)
+    rtol = 1e-6 if blend == "riesz" else 1e-4
+    np.testing.assert_allclose(estimates(moved)[keep], expected, rtol=rtol, atol=1e-9 * size)
+    assert moved.se == pytest.approx(abs(scale) * base.se, rel=rtol)
 
 
 @pytest.mark.xfail(
     strict=True,
     reason="prediction-loss stacking (NNLS without intercept, then normalised) is not "
-    "shift-invariant, and the default tie-break moves towards it (reported; README limits)",
+    "shift-invariant, and the tie-break moves towards it (reported; README limits)",
 )
-def test_outcome_shift_with_the_default_tie_break():
+def test_outcome_shift_with_the_tie_break():
+    # Shown here with the riesz blend and c = 0.5, where the tie-break moves onto the NNLS
+    # outcome weights on this data set; any tie-break towards them inherits the dependence.
     frame = data(5)
-    base = fit(frame, "ate")
-    moved = fit(frame.assign(y=frame.y + 100.0), "ate")
+    base = fit(frame, "ate", blend="riesz", tie_break_scale=0.5)
+    moved = fit(frame.assign(y=frame.y + 100.0), "ate", blend="riesz", tie_break_scale=0.5)
     assert moved.estimate == pytest.approx(base.estimate, rel=1e-6)
 
 
