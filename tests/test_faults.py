@@ -329,6 +329,13 @@ FAULTS = [
         lambda: fit(propensity=propensity_library(boom=FailingFit())),
     ),
     Fault(
+        "propensity learner named like the stacked propensity",
+        "error; rename the learner, or set stacked_propensity to false",
+        "the propensity learner name 'prediction-loss stack' is reserved",
+        InputError,
+        lambda: fit(propensity=propensity_library(**{STACKED_PROPENSITY: DummyClassifier()})),
+    ),
+    Fault(
         "predict_proba returns NaN",
         "learner dropped with a warning",
         "propensity learner 'bad' failed and was dropped: ValueError: returned 67 non-finite",
