@@ -5,12 +5,15 @@ out-of-fold predictions (a synthetic cross-fit of an ATE with noisy, biased lear
 nuisances), n = 1e5 and 1e6, through ``BlendEstimator.analyse``. Each n runs in a fresh
 subprocess so that its peak resident memory (``ru_maxrss``) is its own. Reported: total time,
 bootstrap time, per-stage split (``result.bootstrap.seconds``), ms per replicate of the weight
-search, peak memory. Targets: n = 1e5 under 10 s; n = 1e6 under 60 s and 3 GB.
+search, peak memory. Targets: n = 1e5 under 10 s; n = 1e6 under 60 s and 3 GB. The default path
+has the stacked propensity column (``stacked_propensity``); ``--stacked both`` adds a row per size
+without it, for comparison.
 
 Part 2: (total pipeline time) / (learner fitting time) for the default pipeline (default
 libraries, B = 1000) at n = 1e5 on the Lunceford & Davidian design. Target <= 1.10.
 
 Usage: .venv/bin/python benchmarks/bench_bootstrap.py [--sizes 100000 1000000] [--skip-pipeline]
+       [--stacked {on,off,both}]
 """
 
 from __future__ import annotations
@@ -77,10 +80,10 @@ def synthetic_problem(n: int, seed: int = 0):
     return data, cf
 
 
-def one_size(n: int) -> dict:
+def one_size(n: int, stacked: bool = True) -> dict:
     """Run in a fresh process: analyse with B = 1000 and report times and peak memory."""
     data, cf = synthetic_problem(n)
-    estimator = BlendEstimator("ate", bootstrap=B, seed=1)
+    estimator = BlendEstimator("ate", bootstrap=B, seed=1, stacked_propensity=stacked)
     start, cpu = time.perf_counter(), time.process_time()
     result = estimator.analyse(data, get_target("ate"), cf)
     total, cpu = time.perf_counter() - start, time.process_time() - cpu
@@ -88,6 +91,7 @@ def one_size(n: int) -> dict:
     return {
         "n": n,
         "B": B,
+        "stacked_propensity": stacked,
         "analyse_seconds": total,
         "analyse_cpu_seconds": cpu,
         "bootstrap_seconds": result.timings["bootstrap"],
@@ -140,6 +144,7 @@ def report_sizes(rows: list[dict]) -> None:
         row["meets_memory"] = None if memory is None else row["peak_rss_MiB"] < memory
     columns = (
         "n",
+        "stacked_propensity",
         "bootstrap_seconds",
         "analyse_cpu_seconds",
         "stage_features",
@@ -162,20 +167,32 @@ def main() -> None:
         "--sizes", type=int, nargs="*", default=[100_000, 1_000_000], help="none: skip part 1"
     )
     parser.add_argument("--skip-pipeline", action="store_true")
+    parser.add_argument(
+        "--stacked",
+        choices=("on", "off", "both"),
+        default="on",
+        help="stacked propensity column in part 1 (default on, the default path)",
+    )
     parser.add_argument("--one", type=int, help=argparse.SUPPRESS)
+    parser.add_argument("--one-stacked", choices=("on", "off"), help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.one:
-        print(json.dumps(one_size(args.one)))
+        print(json.dumps(one_size(args.one, args.one_stacked != "off")))
         return
     # The two parts may run separately; each keeps the other's recorded results.
     previous = RESULTS / "bootstrap.json"
     payload = json.loads(previous.read_text()) if previous.exists() else {}
     rows = []
+    variants = ("on", "off") if args.stacked == "both" else (args.stacked,)
     for n in args.sizes:
-        out = subprocess.run(
-            [sys.executable, __file__, "--one", str(n)], capture_output=True, text=True, check=True
-        )
-        rows.append(json.loads(out.stdout.strip().splitlines()[-1]))
+        for stacked in variants:
+            out = subprocess.run(
+                [sys.executable, __file__, "--one", str(n), "--one-stacked", stacked],
+                capture_output=True,
+                text=True,
+                check=True,
+            )
+            rows.append(json.loads(out.stdout.strip().splitlines()[-1]))
     if rows:
         report_sizes(rows)
         payload["bootstrap"] = rows

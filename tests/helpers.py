@@ -17,7 +17,7 @@ from sklearn.base import BaseEstimator, ClassifierMixin, RegressorMixin
 from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.linear_model import LinearRegression, LogisticRegression
 
-from stackdr import BlendEstimator
+from stackdr import BlendEstimator, Component, Target
 
 # ----------------------------------------------------------------------------- learners and data
 
@@ -62,6 +62,22 @@ def confounded_data(rng, n, effect=2.0):
     return X, A, Y, pi
 
 
+#: E[Y(1)] declared through the public target protocol (equals the built-in "mean1").
+TREATED_MEAN = Target(
+    name="treated-mean",
+    description="mean outcome had everyone been treated",
+    components=(
+        Component(
+            outcome_head="mu1",
+            weight_transform=lambda pi: 1.0 / pi,
+            h1=lambda A, Y: -(A == 1).astype(float),
+            h2=lambda A, Y: np.ones_like(A),
+            h3=lambda A, Y: np.where(A == 1, Y, 0.0),
+        ),
+    ),
+)
+
+
 # ----------------------------------------------------------------------------- hypothesis
 
 finite = st.floats(-50, 50, allow_nan=False, allow_infinity=False)
@@ -89,9 +105,10 @@ SHELL = '"; rm -rf /'
 MATH = r"cost $\undefinedcmd$"
 
 
-def hostile_fit(bootstrap: int = 50, seed: int = 3):
+def hostile_fit(bootstrap: int = 50, seed: int = 3, **settings):
     """A quick ATE fit whose names are hostile user text: three propensity learners (one named
-    like a script tag, one with an invalid mathtext command) and two outcome learners."""
+    like a script tag, one with an invalid mathtext command) and two outcome learners; the
+    weight search adds the stacked propensity unless ``settings`` turn it off."""
     rng = np.random.default_rng(seed)
     X, A, Y, _ = confounded_data(rng, 400)
     frame = pd.DataFrame({SCRIPT: X[:, 0], "x2": X[:, 1], MATH: X[:, 2], "treated": A, SHELL: Y})
@@ -102,7 +119,7 @@ def hostile_fit(bootstrap: int = 50, seed: int = 3):
     }
     outcome = {SHELL: LinearRegression(), "mean": DummyRegressor()}
     estimator = BlendEstimator(
-        "ate", propensity, outcome, folds=4, bootstrap=bootstrap, seed=seed, n_jobs=1
+        "ate", propensity, outcome, folds=4, bootstrap=bootstrap, seed=seed, n_jobs=1, **settings
     )
     return estimator.fit(frame, "treated", SHELL)
 

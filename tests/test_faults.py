@@ -30,6 +30,7 @@ from stackdr import BlendEstimator
 from stackdr.cli import main
 from stackdr.errors import InputError, LearnerError, PositivityWarning
 from stackdr.io import load_config, read_results_json
+from stackdr.search import STACKED_PROPENSITY
 from tests.helpers import QUICK_NO_BOOTSTRAP, KnownRegressor, confounded_data, estimate_args
 
 README = Path(__file__).resolve().parents[1] / "README.md"
@@ -328,6 +329,13 @@ FAULTS = [
         lambda: fit(propensity=propensity_library(boom=FailingFit())),
     ),
     Fault(
+        "propensity learner named like the stacked propensity",
+        "error; rename the learner, or set stacked_propensity to false",
+        "the propensity learner name 'prediction-loss stack' is reserved",
+        InputError,
+        lambda: fit(propensity=propensity_library(**{STACKED_PROPENSITY: DummyClassifier()})),
+    ),
+    Fault(
         "predict_proba returns NaN",
         "learner dropped with a warning",
         "propensity learner 'bad' failed and was dropped: ValueError: returned 67 non-finite",
@@ -545,7 +553,7 @@ def test_degenerate_covariates_still_work(baseline, extra):
 def test_failed_learner_is_left_out_exactly(baseline):
     with pytest.warns(UserWarning, match="'boom' failed and was dropped"):
         result = fit(propensity=propensity_library(boom=FailingFit()))
-    assert list(result.alpha.index) == ["logit", "const"]
+    assert list(result.alpha.index) == ["logit", "const", STACKED_PROPENSITY]
     assert result.estimate == baseline.estimate
     assert result.crossfit.failures["propensity:boom"].startswith("RuntimeError")
 
@@ -575,7 +583,8 @@ def test_failed_lp_falls_back_to_a_vertex(monkeypatch, replacement, message):
     _finite_result(result)
     for record in ("alpha", "beta"):
         assert result.search.records[record].status == "fallback"
-        assert sorted(result.search.records[record].weights) == [0.0, 1.0]
+        weights = result.search.records[record].weights
+        assert np.count_nonzero(weights) == 1 and weights.max() == 1.0
 
 
 def test_single_learner_sides():

@@ -17,6 +17,7 @@ from stackdr.core._pairtable import (
     pair_table,
     phi,
     row_contributions,
+    with_stacked_propensity,
 )
 from stackdr.core._risks import (
     checked_mask,
@@ -84,4 +85,5 @@ __all__ = [
     "swap_deviations",
     "value_range",
     "weight_sensitivity",
+    "with_stacked_propensity",
 ]

@@ -6,7 +6,7 @@ computed with matrix products over rows, never as an n x K1 x K2 array.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from scipy.special import expit, logit
@@ -75,6 +75,48 @@ def pair_inputs(
         [c.weight_transform for c in target.components],
         crossfit.propensity_kind,
     )
+
+
+def with_stacked_propensity(inp: PairInputs, weights: np.ndarray) -> PairInputs:
+    """The inputs with one more propensity column: the probability-scale blend ``pi @ weights``
+    (the prediction-loss stacked propensity when ``weights`` are the log-loss stacking weights).
+
+    Its weight-side values are the target's transforms of the blended propensity (e.g.
+    ``1 / (pi @ weights)``), exactly the nuisance prediction-loss stacking uses, so under the
+    riesz blend the vertex of the new column reproduces the prediction-loss stacking estimate
+    at any outcome weights. A convex combination of clipped propensities needs no clipping.
+
+    Parameters
+    ----------
+    inp : PairInputs
+    weights : numpy.ndarray (K1,)
+        Convex weights of the propensity learners.
+
+    Returns
+    -------
+    PairInputs
+        K1 + 1 propensity columns, the new one last; the outcome side is shared.
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> from stackdr.core import get_target, pair_inputs
+    >>> A, Y = np.array([1.0, 0.0]), np.array([2.0, 1.0])
+    >>> crossfit = SimpleNamespace(
+    ...     propensity=np.array([[[0.5, 0.25], [0.5, 0.75]]]),
+    ...     outcome={"mu1": np.zeros((1, 2, 1)), "mu0": np.zeros((1, 2, 1))},
+    ...     propensity_kind="classifier",
+    ... )
+    >>> inp = pair_inputs(get_target("ate"), crossfit, A, Y)
+    >>> with_stacked_propensity(inp, np.array([0.5, 0.5])).P[0].tolist()
+    [[2.0, 4.0, 2.6666666666666665], [2.0, 1.3333333333333333, 1.6]]
+    """
+    stacked = inp.pi @ np.asarray(weights, dtype=float)
+    P = [
+        np.column_stack([P, np.asarray(t(stacked), dtype=float)])
+        for P, t in zip(inp.P, inp.transforms)
+    ]
+    return replace(inp, P=P, pi=np.column_stack([inp.pi, stacked]))
 
 
 def _weights(inp: PairInputs, row_weights: np.ndarray | None) -> np.ndarray:

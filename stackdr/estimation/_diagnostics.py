@@ -174,16 +174,17 @@ def fit_diagnostics(
     clip_counts : ndarray (K, 2)
         Predictions clipped low and high per propensity learner (summed over fold assignments).
     learner_names : sequence of str
-        Propensity learners, in the order of ``clip_counts`` and ``alpha``.
+        Propensity learners, in the order of ``clip_counts``.
     binary : bool
         Whether the treatment is binary; the remaining arguments are needed only then.
-    propensity : ndarray (n, K), optional
-        Out-of-fold propensities of one fold assignment.
+    propensity : ndarray (n, K'), optional
+        Out-of-fold propensities of one fold assignment, one column per propensity column of
+        the weight search (K' = K, or K + 1 with the stacked propensity last).
     inputs : stackdr.core.PairInputs, optional
-        Pair-table inputs of the same fold assignment.
+        Pair-table inputs of the same fold assignment and columns.
     treatment : ndarray (n,), optional
         Treatment codes 0 and 1.
-    alpha : ndarray (K,), optional
+    alpha : ndarray (K',), optional
         Chosen propensity weights.
     blend : str, optional
         The fit's blend.

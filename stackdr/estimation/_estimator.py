@@ -27,6 +27,7 @@ from stackdr.core import (
     pair_table,
     phi,
     squared_error_losses,
+    with_stacked_propensity,
 )
 from stackdr.errors import InputError
 from stackdr.estimation._crossfit import CrossFitResult, cross_fit
@@ -47,6 +48,7 @@ from stackdr.estimation._results import BlendResult, EstimatorRow
 from stackdr.estimation._settings import settings_record, validate_params
 from stackdr.inference import InferenceSettings, refit_bootstrap, reweighting_bootstrap
 from stackdr.search import (
+    STACKED_PROPENSITY,
     SearchSettings,
     WeightContext,
     comparison_weights,
@@ -57,7 +59,15 @@ from stackdr.search import (
 
 @dataclass(frozen=True)
 class Analysis:
-    """Everything computed from one cross-fit, reused by the bootstrap."""
+    """Everything computed from one cross-fit, reused by the bootstrap.
+
+    The weight search works on the propensity columns named by ``propensity_names``: the
+    library's learners, then, with ``stacked`` (setting ``stacked_propensity`` under the riesz
+    blend), the prediction-loss stacked propensity ``pi @ stack_alpha`` as one more column.
+    ``inputs``, ``Psi``, ``pair_se`` and the propensity mask are over those columns;
+    ``base_inputs``, ``losses`` and ``stack_alpha`` over the library's learners only (they are
+    the same objects as ``inputs`` when nothing is stacked).
+    """
 
     inputs: list
     Psi: np.ndarray
@@ -67,6 +77,36 @@ class Analysis:
     stack_beta: np.ndarray
     masks: tuple
     settings: SearchSettings
+    base_inputs: list
+    propensity_names: list
+    stacked: bool = False
+
+    @property
+    def base_learners(self) -> int:
+        """K1, the number of propensity learners of the library."""
+        return self.Psi.shape[0] - int(self.stacked)
+
+    def search_anchor(self, stack_alpha: np.ndarray) -> np.ndarray:
+        """The propensity-side tie-break anchor for stacking weights ``stack_alpha``: those
+        weights, or the vertex of the stacked column, which is the same propensity."""
+        if not self.stacked:
+            return stack_alpha
+        return np.eye(self.Psi.shape[0])[-1]
+
+    def search_weights(self, alpha: np.ndarray, base: bool) -> np.ndarray:
+        """Propensity weights over the search's columns (0 on the stacked column for weights
+        over the library's learners)."""
+        alpha = np.asarray(alpha, dtype=float)
+        return np.append(alpha, 0.0) if base and self.stacked else alpha
+
+    def risk_weights(self, alpha: np.ndarray, base: bool, blend: str) -> np.ndarray:
+        """Propensity weights over the search's columns at which a row's pseudo-risk is
+        evaluated: the weights shown, except that a probability-scale blend at the stacking
+        weights (prediction-loss stacking) is the stacked column's vertex, its own propensity."""
+        if self.stacked and base and blend == "probability":
+            if np.array_equal(alpha, self.stack_alpha):
+                return self.search_anchor(self.stack_alpha)
+        return self.search_weights(alpha, base)
 
 
 class BlendEstimator(BaseEstimator):
@@ -93,6 +133,18 @@ class BlendEstimator(BaseEstimator):
         closest to the prediction-loss stacking weights.
     tie_break_scale : float
         The constant c of the tolerance c x (SE of the pair contrast attaining the range).
+    stacked_propensity : bool
+        With the riesz blend, add the prediction-loss stacked propensity (the probability-scale
+        blend of the propensity learners at their prediction-loss stacking weights) as one more
+        propensity learner of the weight search, named ``"prediction-loss stack"``, and make
+        its vertex the propensity-side tie-break anchor. When the data cannot tell the
+        sensitivities apart beyond the noise floor, the tie-break then returns exactly the
+        propensity of prediction-loss stacking, and with the outcome side at its anchor (the
+        NNLS weights) exactly its estimate. The comparison rows other than target-aimed
+        stacking stay over the library's own learners. The other blends are unchanged (under
+        the probability blend the stacked propensity already is the point alpha = stacking
+        weights of the search), and so is a continuous treatment (whose weight side is linear
+        in E[A | X]) or a single propensity learner.
     directions : {"all", "credible"}
         Learners whose swaps define the perturbations: all of them (the published method), or
         only those whose out-of-fold loss is within ``direction_tolerance`` (relative) of the
@@ -147,6 +199,7 @@ class BlendEstimator(BaseEstimator):
         criterion: str = "mixed",
         tie_break: bool = True,
         tie_break_scale: float = 0.5,
+        stacked_propensity: bool = True,
         directions: str = "all",
         direction_tolerance: float = 0.25,
         clip: float = 0.01,
@@ -173,6 +226,7 @@ class BlendEstimator(BaseEstimator):
         self.criterion = criterion
         self.tie_break = tie_break
         self.tie_break_scale = tie_break_scale
+        self.stacked_propensity = stacked_propensity
         self.directions = directions
         self.direction_tolerance = direction_tolerance
         self.clip = clip
@@ -281,24 +335,60 @@ class BlendEstimator(BaseEstimator):
         self, prepared: PreparedData, target: Target, cf: CrossFitResult
     ) -> Analysis:
         """Pair tables, prediction losses, stacking weights and direction masks."""
-        inputs = [pair_inputs(target, cf, prepared.A, prepared.Y, r) for r in range(cf.repeats)]
-        tables = np.stack([pair_table(inp) for inp in inputs])
-        Psi = np.median(tables, axis=0)
-        pair_se = np.median(np.stack([pair_standard_errors(inp) for inp in inputs]), axis=0)
+        base_inputs = [
+            pair_inputs(target, cf, prepared.A, prepared.Y, r) for r in range(cf.repeats)
+        ]
         losses, stack_alpha, stack_beta = prediction_losses_and_stacking(prepared, cf)
-        masks = (
-            self._direction_mask(losses["propensity"]),
-            self._direction_mask(losses["outcome"]),
+        names = list(cf.propensity_names)
+        # With one learner the stacked propensity is that learner again; with a continuous
+        # treatment the weight side is linear in E[A | X], so the riesz blend at the stacking
+        # weights already is the stacked propensity.
+        stacked = (
+            bool(self.stacked_propensity)
+            and self.blend == "riesz"
+            and len(names) > 1
+            and cf.propensity_kind == "classifier"
         )
+        inputs = base_inputs
+        prop_mask = self._direction_mask(losses["propensity"])
+        if stacked:
+            if STACKED_PROPENSITY in names:
+                raise InputError(
+                    f"the propensity learner name {STACKED_PROPENSITY!r} is reserved for the "
+                    "stacked propensity; rename the learner or set stacked_propensity to false"
+                )
+            names.append(STACKED_PROPENSITY)
+            inputs = [with_stacked_propensity(inp, stack_alpha) for inp in base_inputs]
+            if prop_mask is not None:
+                # The stacked propensity is credible by the same rule, against the best learner.
+                loss = stacked_propensity_loss(prepared, cf, stack_alpha)
+                prop_mask = np.append(prop_mask, self._direction_mask(losses["propensity"], loss))
+        Psi = _search_table(pair_table, base_inputs, inputs, stacked)
+        pair_se = _search_table(pair_standard_errors, base_inputs, inputs, stacked)
+        masks = (prop_mask, self._direction_mask(losses["outcome"]))
         return Analysis(
-            inputs, Psi, pair_se, losses, stack_alpha, stack_beta, masks, self.search_settings()
+            inputs,
+            Psi,
+            pair_se,
+            losses,
+            stack_alpha,
+            stack_beta,
+            masks,
+            self.search_settings(),
+            base_inputs,
+            names,
+            stacked,
         )
 
-    def _direction_mask(self, loss: np.ndarray) -> np.ndarray | None:
+    def _direction_mask(self, loss: np.ndarray, candidate=None) -> np.ndarray | None:
+        """Learners whose loss is within the tolerance of the best (or whether ``candidate``, a
+        loss, is)."""
         if self.directions == "all":
             return None
         best = loss.min()
-        return loss <= best + self.direction_tolerance * abs(best)
+        return (loss if candidate is None else candidate) <= best + self.direction_tolerance * abs(
+            best
+        )
 
     def analyse(
         self, prepared: PreparedData, target: Target, cf: CrossFitResult, bootstrap: bool = True
@@ -314,7 +404,7 @@ class BlendEstimator(BaseEstimator):
             an.Psi,
             settings,
             phi=phi_fn,
-            anchors=(an.stack_alpha, an.stack_beta),
+            anchors=(an.search_anchor(an.stack_alpha), an.stack_beta),
             tolerance=tolerance,
             masks=an.masks,
         )
@@ -328,11 +418,13 @@ class BlendEstimator(BaseEstimator):
                 an.losses["outcome"],
                 an.masks,
                 settings,
+                an.pair_se[: an.base_learners],
+                an.stacked,
             )
         )
         rows = [
-            self._row(name, an, alpha, beta, blend, kind)
-            for name, (alpha, beta, blend, kind) in selections.items()
+            self._row(name, an, alpha, beta, blend, kind, base)
+            for name, (alpha, beta, blend, kind, base) in selections.items()
         ]
         main = rows[0]
         timings = {"analysis": time.perf_counter() - t0}
@@ -345,7 +437,7 @@ class BlendEstimator(BaseEstimator):
             estimate=main.estimate,
             se=main.se,
             level=self.level,
-            alpha=pd.Series(search.alpha, index=cf.propensity_names, name="propensity weight"),
+            alpha=pd.Series(search.alpha, index=an.propensity_names, name="propensity weight"),
             beta=pd.Series(search.beta, index=cf.outcome_names, name="outcome weight"),
             estimators=rows,
             settings=settings_record(self.get_params(deep=False)),
@@ -393,15 +485,20 @@ class BlendEstimator(BaseEstimator):
         cf = self.cross_fit(prepared, target, n_jobs=1)
         return self.analyse(prepared, target, cf, bootstrap=False)
 
-    def _row(self, name, an: Analysis, alpha, beta, blend, kind) -> EstimatorRow:
-        vals = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
+    def _row(self, name, an: Analysis, alpha, beta, blend, kind, base: bool) -> EstimatorRow:
+        """A comparison row: the estimate on the inputs its weights are over; the weights shown
+        and the pseudo-risk (:meth:`Analysis.risk_weights`) over the search's propensity
+        columns."""
+        inputs = an.base_inputs if base else an.inputs
+        vals = [blend_estimate(inp, alpha, beta, blend) for inp in inputs]
         est, se = combine_repeats([v.estimate for v in vals], [v.se for v in vals])
-        phi_alpha = phi_function(an.inputs, an.settings.blend)(np.asarray(alpha)[None])[0]
+        at = an.risk_weights(alpha, base, blend)
+        phi_alpha = phi_function(an.inputs, an.settings.blend)(at[None])[0]
         chi_beta = an.Psi @ beta
         risk = pseudo_risk(an.settings.criterion, phi_alpha, chi_beta, phi_alpha @ beta, an.masks)
-        return EstimatorRow(
-            name, kind, est, se, np.asarray(alpha), np.asarray(beta), risk, self.level
-        )
+        alpha = an.search_weights(alpha, base)
+        return EstimatorRow(name, kind, est, se, alpha, np.asarray(beta), risk, self.level)
+
 
 def combine_repeats(estimates, ses) -> tuple[float, float]:
     """Median over repeated splits, with the spread-adjusted SE of Chernozhukov et al. (2018)."""
@@ -436,6 +533,27 @@ def prediction_losses_and_stacking(prepared: PreparedData, cf: CrossFitResult):
         prop_loss = squared_error_losses(probs, a)
         alpha = nnls_stack(probs, a).weights
     return {"propensity": prop_loss, "outcome": out_loss}, alpha, beta
+
+
+def _search_table(table, base_inputs: list, inputs: list, stacked: bool) -> np.ndarray:
+    """A per-pair table (``table(inputs)``, K x K2) over the search's propensity columns, median
+    over repeated splits. The learners' rows are computed from their own inputs, so they are the
+    same numbers whether or not the stacked propensity's row is appended."""
+    values = [table(inp) for inp in base_inputs]
+    if stacked:
+        values = [np.vstack([v, table(inp)[-1:]]) for v, inp in zip(values, inputs)]
+    return np.median(np.stack(values), axis=0)
+
+
+def stacked_propensity_loss(
+    prepared: PreparedData, cf: CrossFitResult, stack_alpha: np.ndarray
+) -> float:
+    """Out-of-fold loss of the prediction-loss stacked propensity, pooled over repeated
+    splits like the learners' losses."""
+    probs = cf.propensity.reshape(-1, len(cf.propensity_names)) @ stack_alpha
+    a = np.tile(prepared.A, cf.repeats)
+    losses = log_losses if cf.propensity_kind == "classifier" else squared_error_losses
+    return float(losses(probs[:, None], a)[0])
 
 
 # Values within this fraction of the pair table's spread count as tied for the largest or the

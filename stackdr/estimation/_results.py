@@ -61,7 +61,9 @@ class BlendResult:
         Target-aimed estimate and its influence-function standard error (Wald, ignores the
         selection of weights; see ``interval`` for the bootstrap interval when computed).
     alpha, beta : pandas.Series
-        Chosen weights of the propensity and outcome libraries, indexed by learner name.
+        Chosen weights of the propensity and outcome libraries, indexed by learner name. With
+        the ``stacked_propensity`` setting (riesz blend) the propensity side has one more entry,
+        ``"prediction-loss stack"``: the weight on the prediction-loss stacked propensity.
     estimators : list of EstimatorRow
         The comparison table rows (target-aimed first).
     search : stackdr.search.WeightSearch
@@ -106,8 +108,15 @@ class BlendResult:
         return self.estimators[0].wald_interval
 
     @property
+    def propensity_names(self) -> list:
+        """The propensity columns of the weight search: the learners, then the stacked
+        propensity ``"prediction-loss stack"`` when the search has it."""
+        return list(self.analysis.propensity_names)
+
+    @property
     def pair_table(self) -> pd.DataFrame:
-        """Psi: the DR estimate for every (propensity learner, outcome learner) pair."""
+        """Psi: the DR estimate for every (propensity learner, outcome learner) pair, the
+        stacked propensity included as a row when the search has it."""
         return self._learner_frame(self.analysis.Psi)
 
     @property
@@ -117,7 +126,7 @@ class BlendResult:
     def _learner_frame(self, values) -> pd.DataFrame:
         return pd.DataFrame(
             values,
-            index=pd.Index(self.crossfit.propensity_names, name="propensity learner"),
+            index=pd.Index(self.propensity_names, name="propensity learner"),
             columns=pd.Index(self.crossfit.outcome_names, name="outcome learner"),
         )
 
@@ -183,14 +192,14 @@ class BlendResult:
                     "high": r.high,
                     "interval": r.interval_method,
                     "pseudo_risk": r.pseudo_risk,
-                    "propensity_weights": _weights_text(self.crossfit.propensity_names, r.alpha),
+                    "propensity_weights": _weights_text(self.propensity_names, r.alpha),
                     "outcome_weights": _weights_text(self.crossfit.outcome_names, r.beta),
                 }
             )
         if include_pairs:
             Psi, se = self.analysis.Psi, self.analysis.pair_se
             z = norm.ppf(0.5 + self.level / 2)
-            for k, pk in enumerate(self.crossfit.propensity_names):
+            for k, pk in enumerate(self.propensity_names):
                 for j, oj in enumerate(self.crossfit.outcome_names):
                     rows.append(
                         {
@@ -218,7 +227,7 @@ class BlendResult:
             clip_counts=cf.clip_counts.sum(axis=0),
             learner_names=cf.propensity_names,
             binary=cf.propensity_kind == "classifier",
-            propensity=cf.propensity[0],
+            propensity=self.analysis.inputs[0].pi,
             inputs=self.analysis.inputs[0],
             treatment=self.data.A,
             alpha=self.alpha.to_numpy(),

@@ -191,6 +191,13 @@ _TABLE = (
         metavar="C",
     ),
     Setting(
+        "stacked_propensity",
+        True,
+        "switch",
+        "add the prediction-loss stacked propensity as one more propensity learner of the weight "
+        "search (riesz blend)",
+    ),
+    Setting(
         "directions", "all", "text", "learners whose swaps define the perturbations", DIRECTIONS
     ),
     Setting(

@@ -120,7 +120,7 @@ def summarise_replicates(result, est, alphas, betas, moved, kind, method, chunk,
         for nm in names
     }
     cf = result.crossfit
-    a = pd.DataFrame(alphas, columns=cf.propensity_names)
+    a = pd.DataFrame(alphas, columns=result.analysis.propensity_names)
     b = pd.DataFrame(betas, columns=cf.outcome_names)
     freq = pd.concat(
         [

@@ -8,18 +8,21 @@ per-row terms whose weighted sums are every quantity the search needs, and W (n 
 weights. Peak extra memory is about ``8 n (M + chunk)`` bytes; the chunk is sized so that the
 weight block stays under ``memory_budget`` bytes, so no n x B matrix is ever formed.
 
-Approximations, stated: the log-loss stacking weights of a replicate are one projected Newton
-step from the full-sample weights, and the prediction-loss stacking estimate (a probability-scale
+Approximations, stated: the log-loss stacking weights of a replicate are one projected Newton step
+from the full-sample weights, and the prediction-loss stacking estimate (a probability-scale
 propensity blend, not bilinear in the pair table) is expanded to first order in the propensity
 weights around the full-sample weights; both errors are second order in the replicate's weight
-change. The tie-break tolerance and the credible-direction masks are held at their full-sample
-values. Non-riesz blends need phi(alpha) from the weighted rows in every replicate; this is exact,
-not approximated: phi at the lattice the search scans is computed for the whole chunk at once
-(row weights enter phi linearly, so it is one matrix product per repeat and component,
-:func:`~stackdr.pairtable.lattice_phi`), and every other call goes through
-:class:`~stackdr.pairtable.WeightedPhi`, which keeps the blend base (e.g. logit pi) and the
-weighted row terms of the replicate's nonzero rows. The search itself (lattice, starts, pattern
-search, polish, tie-break) is the full-sample one, unchanged, in every replicate.
+change. With the stacked propensity column (setting ``stacked_propensity``), that column's row of a
+replicate's pair table is the same expansion at outcome weights e_j (the stacked propensity of the
+replicate is the blend at the replicate's stacking weights; recomputing it exactly would need work
+over all n rows per replicate). The tie-break tolerance and the credible-direction masks are held at
+their full-sample values. Non-riesz blends need phi(alpha) from the weighted rows in every
+replicate; this is exact, not approximated: phi at the lattice the search scans is computed for the
+whole chunk at once (row weights enter phi linearly, so it is one matrix product per repeat and
+component, :func:`~stackdr.pairtable.lattice_phi`), and every other call goes through
+:class:`~stackdr.pairtable.WeightedPhi`, which keeps the blend base (e.g. logit pi) and the weighted
+row terms of the replicate's nonzero rows. The search itself (lattice, starts, pattern search,
+polish, tie-break) is the full-sample one, unchanged, in every replicate.
 
 The refit bootstrap resamples rows and reruns everything, learner fits included: expensive,
 fully honest about the learners too.
@@ -155,7 +158,8 @@ def _pls_terms(inp, alpha0: np.ndarray, step: float = 1e-6) -> dict:
 
 
 def _pls_estimates(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, betas, alpha0):
-    """Replicate prediction-loss stacking estimates from weighted sums ``s`` (chunk x M)."""
+    """Replicate prediction-loss stacking estimates from weighted sums ``s`` (chunk x M), at
+    propensity weights ``alphas`` and outcome weights ``betas`` (one row per replicate)."""
     da = alphas - alpha0
     ab = s[:, sl["pls_ab"]].reshape(-1, K1, K2)
     num = (
@@ -167,13 +171,29 @@ def _pls_estimates(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, betas, alp
     return num / s[:, sl["d"]][:, 0]
 
 
+def _stacked_rows(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, alpha0) -> np.ndarray:
+    """The stacked propensity's row of each replicate's pair table (chunk x K2).
+
+    Entry j is the DR estimate at the replicate's stacked propensity ``pi @ alphas[c]`` and
+    outcome learner j: the prediction-loss stacking estimate at outcome weights e_j, by the same
+    first-order expansion in the stacking weights around the full-sample weights ``alpha0``
+    (:func:`_pls_terms`). The error is second order in the replicate's change of stacking
+    weights; at ``alphas = alpha0`` the row is exact.
+    """
+    rows = np.empty((alphas.shape[0], K2))
+    for j, vertex in enumerate(np.eye(K2)):
+        betas = np.broadcast_to(vertex, (alphas.shape[0], K2))
+        rows[:, j] = _pls_estimates(s, sl, K1, K2, alphas, betas, alpha0)
+    return rows
+
+
 # ----------------------------------------------------------------------------- one chunk
 
 
 def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
     """Run replicates ``indices``: row weights, batched moments, searches, estimates."""
     settings, masks = an.settings, an.masks
-    K1, K2 = an.Psi.shape
+    K1, K2 = an.base_learners, an.Psi.shape[1]
     layout = _Layout(K1, K2, cf_meta["classifier"])
     sl = layout.slices()
     n = inputs[0].n
@@ -183,7 +203,6 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
     t0 = time.perf_counter()
     sums = [W.T @ F for F in features]  # one matrix product per repeat
     tables = np.stack([(s[:, sl["pairs"]] / s[:, sl["d"]]).reshape(-1, K1, K2) for s in sums])
-    Psi_b = np.median(tables, axis=0)
     s0 = np.sum(sums, axis=0) if len(sums) > 1 else sums[0]
     gram = s0[:, sl["gram"]].reshape(-1, K2, K2)
     beta_s = nnls_stack_from_moments(gram, s0[:, sl["cross"]])
@@ -193,13 +212,18 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
         )
     else:
         alpha_s = nnls_stack_from_moments(s0[:, sl["hess"]].reshape(-1, K1, K1), s0[:, sl["grad"]])
+    if an.stacked:
+        stacked = [_stacked_rows(sm, sl, K1, K2, alpha_s, an.stack_alpha) for sm in sums]
+        tables = np.concatenate([tables, np.stack(stacked)[:, :, None, :]], axis=2)
+    Psi_b = np.median(tables, axis=0)
     moments_s = time.perf_counter() - t0
 
     comparisons = active_comparisons(settings)
     out = {c.name: np.empty(len(indices)) for c in comparisons}
-    alphas = np.empty((len(indices), K1))
+    alphas = np.empty((len(indices), an.Psi.shape[0]))
     betas = np.empty((len(indices), K2))
     moved = np.zeros(len(indices), dtype=bool)
+    pair_se = an.pair_se[:K1]
     t1 = time.perf_counter()
     lattice = _replicate_lattice(inputs, settings, W, K1, K2)
     for col in range(len(indices)):
@@ -211,7 +235,7 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
             Psi,
             settings,
             phi=phi_fn,
-            anchors=(alpha_s[col], beta_s[col]),
+            anchors=(an.search_anchor(alpha_s[col]), beta_s[col]),
             tolerance=taus,
             masks=masks,
         )
@@ -230,14 +254,18 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
             s0[col, sl["out_loss"]],
             masks,
             settings,
+            pair_se,
+            an.stacked,
         )
         for comparison in comparisons:
             if comparison.replicate != "weights":
                 continue
             a, b = comparison.weights(ctx)
-            if settings.blend == "riesz":
-                out[comparison.name][col] = a @ Psi @ b
+            if comparison.row_blend(settings) == "riesz":
+                table = ctx.base_Psi if comparison.learners == "base" else Psi
+                out[comparison.name][col] = a @ table @ b
             else:
+                # A nonlinear search blend never has the stacked column.
                 out[comparison.name][col] = phi_fn(np.asarray(a)[None])[0] @ b
     search_s = time.perf_counter() - t1
     linearised = np.median(
@@ -318,7 +346,8 @@ def reweighting_bootstrap(
     prepared = result.data
     t0 = time.perf_counter()
     features = [
-        replicate_features(inp, cf, prepared, r, an.stack_alpha) for r, inp in enumerate(an.inputs)
+        replicate_features(inp, cf, prepared, r, an.stack_alpha)
+        for r, inp in enumerate(an.base_inputs)
     ]
     feature_s = time.perf_counter() - t0
     n = prepared.n
@@ -363,5 +392,3 @@ def _fixed_tolerances(result) -> dict:
         rec = recs.get(key) or recs.get("joint_tie_break")
         out[side] = float(rec.details.get("tolerance", 0.0)) if rec is not None else 0.0
     return out
-
-

@@ -19,6 +19,7 @@ from sklearn.utils.validation import check_is_fitted
 from stackdr.core import blended_weight_side, row_contributions
 from stackdr.errors import InputError
 from stackdr.estimation import default_outcome_library, default_propensity_library
+from stackdr.search import STACKED_PROPENSITY
 
 # Propensity scales a blended classifier can average on, and the function of pi each averages.
 SCALES = {
@@ -66,7 +67,8 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
           E[A | X]. For the ``probability`` and ``logit`` blends it is exactly the blended
           propensity used; for the ``riesz`` blend, which averages the weight-side values rather
           than propensities, it is the probability-scale average with the same weights (shown
-          for overlap checks; the estimate used the ``weight_*`` columns).
+          for overlap checks; the estimate used the ``weight_*`` columns). A weight on the
+          stacked propensity (``"prediction-loss stack"``) counts its probabilities.
         - ``mu1``, ``mu0`` or ``m``: outcome regressions at the outcome weights, one column per
           outcome head the target uses.
         - ``weight_<head>``: the weight-side value p_c of each component (for example 1/pi for
@@ -92,7 +94,8 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
     frames = []
     for r in repeats:
         inp = result.analysis.inputs[r]
-        pi = cf.propensity[r]
+        # The search's propensity columns: the learners' and, when stacked, the stacked one.
+        pi = inp.pi
         if blend == "logit":
             propensity, scale = expit(logit(pi) @ alpha), "logit-scale average"
         elif blend == "probability":
@@ -301,12 +304,15 @@ def blended_models(
     -------
     dict
         ``"propensity"``: a fitted BlendedClassifier (binary treatment) or BlendedRegressor
-        (continuous treatment) at the propensity weights. Under the ``riesz`` blend its scale
-        matches the blended weight-side function (``inverse`` for 1/pi, ``inverse-complement``
-        for 1/(1-pi), ``odds`` for pi/(1-pi)); when the target has components on different scales
-        (the ATE) there is one model per outcome head, ``"propensity_mu1"`` and
-        ``"propensity_mu0"``. Then one fitted BlendedRegressor per outcome head (``"mu1"``,
-        ``"mu0"`` or ``"m"``); with pooled outcome models ``"outcome"``, fitted on [X, A].
+        (continuous treatment) at the propensity weights. A weight on the stacked propensity
+        (``"prediction-loss stack"``) goes to a member that is itself a BlendedClassifier: the
+        probability-scale blend of the refitted learners at the prediction-loss stacking weights.
+        Under the ``riesz`` blend its scale matches the blended weight-side function (``inverse``
+        for 1/pi, ``inverse-complement`` for 1/(1-pi), ``odds`` for pi/(1-pi)); when the target has
+        components on different scales (the ATE) there is one model per outcome head,
+        ``"propensity_mu1"`` and ``"propensity_mu0"``. Then one fitted BlendedRegressor per outcome
+        head (``"mu1"``, ``"mu0"`` or ``"m"``); with pooled outcome models ``"outcome"``, fitted on
+        [X, A].
     """
     cf, data, target = result.crossfit, result.data, result.target
     X = data.X if X is None else np.asarray(X, dtype=float)
@@ -325,7 +331,11 @@ def blended_models(
         "propensity",
     )
     olib = _library(outcome_learners, default_outcome_library, cf.outcome_names, "outcome")
-    alpha = dict(zip(cf.propensity_names, result.alpha.to_numpy(dtype=float)))
+    if result.analysis.stacked:
+        stack = dict(zip(cf.propensity_names, result.analysis.stack_alpha))
+        member = BlendedClassifier(plib, stack, "probability", float(cf.clip))
+        plib = {**plib, STACKED_PROPENSITY: member}
+    alpha = dict(zip(result.propensity_names, result.alpha.to_numpy(dtype=float)))
     beta = dict(zip(cf.outcome_names, result.beta.to_numpy(dtype=float)))
     models: dict = {}
     blend = result.settings["blend"]

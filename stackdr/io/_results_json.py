@@ -125,10 +125,10 @@ def _sensitivities(result: BlendResult) -> dict:
         "weight_direction": plain(result.search.s_ps),
         "at_chosen_weights": {
             "by_outcome_learner": _named(cf.outcome_names, by_outcome),
-            "by_propensity_learner": _named(cf.propensity_names, by_propensity),
+            "by_propensity_learner": _named(result.propensity_names, by_propensity),
         },
         "direction_learners": {
-            "propensity": _masked(cf.propensity_names, prop_mask),
+            "propensity": _masked(result.propensity_names, prop_mask),
             "outcome": _masked(cf.outcome_names, out_mask),
         },
     }
@@ -250,7 +250,7 @@ def result_to_dict(result: BlendResult) -> dict:
         Plain data (see ``docs/results-schema.md``); NaN and infinities become None.
     """
     cf, data = result.crossfit, result.data
-    pnames, onames = list(cf.propensity_names), list(cf.outcome_names)
+    pnames, onames = result.propensity_names, list(cf.outcome_names)
     low, high = result.interval
     estimators = []
     for row in result.estimators:

@@ -15,6 +15,7 @@ import pathlib
 from stackdr.io import atomic_write, plain, validate_results
 from stackdr.reporting._figures import FIGURES, landscape_kind, render_figures
 from stackdr.reporting._html import escape, figure, number_text, page, paragraph, table
+from stackdr.search import SMOOTHED, STACKED_PROPENSITY
 
 SECTIONS = (
     ("job", "Job and settings"),
@@ -156,6 +157,13 @@ def _estimators(r: dict, figs: dict) -> str:
         "weights minimise (lower means less sensitive to swapping learners)."
     )
     out += _figure(figs, "estimators", "Estimators with their intervals")
+    if any(x["name"] == SMOOTHED for x in r["estimators"]):
+        out += paragraph(
+            f"The {SMOOTHED} weighs every single pair by exp(-R / scale), R its mixed-minimax "
+            "pseudo-risk and the scale the smallest R (at least a hundredth of the median squared "
+            "pair standard error). The pair weights are the products of the propensity and "
+            "outcome weights shown for it, so it equals the riesz blend at those weights."
+        )
     out += table(
         [
             "estimator",
@@ -230,6 +238,14 @@ def _pairs(r: dict, figs: dict) -> str:
         "across columns means that propensity learner makes the estimate insensitive to the "
         "outcome model, and vice versa."
     )
+    if STACKED_PROPENSITY in pairs["rows"]:
+        out += paragraph(
+            f"The row {STACKED_PROPENSITY!r} is the prediction-loss stacked propensity (the "
+            "propensity learners blended on the probability scale with their prediction-loss "
+            "stacking weights), searched over as one more propensity learner; with all the weight "
+            "there and the outcome weights of prediction-loss stacking, the estimate is that of "
+            "prediction-loss stacking."
+        )
     out += _figure(figs, "pair_table", "Pair table as a heat map")
     rows = [
         [name] + [f"{number_text(v)} ({number_text(s, 2)})" for v, s in zip(vals, ses)]

@@ -12,6 +12,8 @@ from stackdr.search._comparisons import (
     ORACLE,
     PLS,
     PURE,
+    SMOOTHED,
+    STACKED_PROPENSITY,
     Comparison,
     WeightContext,
     active_comparisons,
@@ -28,6 +30,7 @@ from stackdr.search._selection import (
     pseudo_risk,
     pure_weights,
     run_search,
+    smoothed_pair_weights,
 )
 from stackdr.search._tie_break import tie_break_general, tie_break_range
 from stackdr.search._weights import search_weights
@@ -43,6 +46,8 @@ __all__ = [
     "ORACLE",
     "PLS",
     "PURE",
+    "SMOOTHED",
+    "STACKED_PROPENSITY",
     "Comparison",
     "WeightContext",
     "active_comparisons",
@@ -61,6 +66,7 @@ __all__ = [
     "run_search",
     "search_weights",
     "simplex_lattice",
+    "smoothed_pair_weights",
     "tie_break_general",
     "tie_break_range",
 ]

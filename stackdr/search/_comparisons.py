@@ -2,10 +2,10 @@
 
 Each :class:`Comparison` says how its weights come from a :class:`WeightContext` (the pair table,
 the weight search, the prediction-loss stacking weights and per-learner losses of one sample),
-which blend its estimate uses, whether it appears under the current settings, and how the
-reweighting bootstrap recomputes it. The estimator's full-sample table, the bootstrap
-replicates, the study replicate and both reports read :data:`COMPARISONS`, so adding an
-estimator means adding one entry here.
+which blend its estimate uses, over which propensity learners it is defined, whether it appears
+under the current settings, and how the reweighting bootstrap recomputes it. The estimator's
+full-sample table, the bootstrap replicates, the study replicate and both reports read
+:data:`COMPARISONS`, so adding an estimator means adding one entry here.
 """
 
 from __future__ import annotations
@@ -16,7 +16,12 @@ from functools import cached_property
 
 import numpy as np
 
-from stackdr.search._selection import SearchSettings, discrete_pairs, pure_weights
+from stackdr.search._selection import (
+    SearchSettings,
+    discrete_pairs,
+    pure_weights,
+    smoothed_pair_weights,
+)
 
 MAIN = "target-aimed stacking"
 PURE = "target-aimed, no tie-break"
@@ -24,6 +29,10 @@ PLS = "prediction-loss stacking"
 BEST = "best-predicting pair"
 MIXED_PAIR = "mixed-minimax pair"
 MINIMAX_PAIR = "minimax pair"
+SMOOTHED = "smoothed pair average"
+#: Name of the extra propensity column of the weight search with ``stacked_propensity``: the
+#: prediction-loss stacked propensity, added as one more propensity learner.
+STACKED_PROPENSITY = "prediction-loss stack"
 #: A study-only row: AIPW at the design's true nuisances (see ``stackdr.studies``).
 ORACLE = "oracle pair"
 
@@ -44,8 +53,14 @@ class WeightContext:
     propensity_loss, outcome_loss : numpy.ndarray
         Per-learner out-of-fold losses on this sample.
     masks : tuple
-        Direction masks (propensity, outcome).
+        Direction masks (propensity, outcome), over the columns of ``Psi``.
     settings : SearchSettings
+    pair_se : numpy.ndarray, optional
+        Influence-function SEs of the base learners' pairs; the full-sample values in every
+        bootstrap replicate too (they only set the smoothed selector's scale floor).
+    stacked : bool
+        Whether the last row of ``Psi`` is the prediction-loss stacked propensity (the search's
+        extra column) rather than a learner of the library.
     """
 
     Psi: np.ndarray
@@ -56,14 +71,29 @@ class WeightContext:
     outcome_loss: np.ndarray
     masks: tuple
     settings: SearchSettings
+    pair_se: np.ndarray | None = None
+    stacked: bool = False
+
+    @property
+    def base_Psi(self) -> np.ndarray:
+        """The pair table of the library's own learners (without the stacked column)."""
+        return self.Psi[:-1] if self.stacked else self.Psi
+
+    @property
+    def base_masks(self) -> tuple:
+        prop_mask, out_mask = self.masks
+        if self.stacked and prop_mask is not None:
+            prop_mask = prop_mask[:-1]
+        return prop_mask, out_mask
 
     @cached_property
     def pairs(self) -> dict:
         """The discrete selectors' pairs (computed once for both of them)."""
-        return discrete_pairs(self.Psi, self.masks)
+        return discrete_pairs(self.base_Psi, self.base_masks)
 
     def vertex(self, k: int, j: int) -> tuple[np.ndarray, np.ndarray]:
-        K1, K2 = self.Psi.shape
+        """The vertex weights of pair (k, j) of the library's own learners."""
+        K1, K2 = self.base_Psi.shape
         return np.eye(K1)[k], np.eye(K2)[j]
 
 
@@ -81,12 +111,17 @@ class Comparison:
         Row name in tables, reports and study files; the tuple order of :data:`COMPARISONS` is
         the row order everywhere.
     kind : str
-        "target-aimed", "prediction-loss" or "single pair".
+        "target-aimed", "prediction-loss", "single pair" or "pair average".
     weights : callable
         ``weights(context) -> (alpha, beta)``, the same rule in the full sample and in every
-        bootstrap replicate.
+        bootstrap replicate. The estimate is the DR estimate at these blended nuisances, so the
+        weights say exactly what the row estimates.
     blend : str or None
         The blend of the row's estimate; None means the search's blend.
+    learners : str
+        "search": alpha is over the columns of the search's pair table (the stacked column
+        included, when there is one); "base": over the library's own learners only (the
+        stacked column is shown with weight 0).
     shown : callable
         ``shown(settings) -> bool``: whether the row exists under these settings.
     replicate : str
@@ -100,6 +135,7 @@ class Comparison:
     kind: str
     weights: Callable[[WeightContext], tuple]
     blend: str | None = None
+    learners: str = "search"
     shown: Callable[[SearchSettings], bool] = _always
     replicate: str = "weights"
 
@@ -109,6 +145,11 @@ class Comparison:
 
 def _best_predicting(ctx: WeightContext):
     return ctx.vertex(int(np.argmin(ctx.propensity_loss)), int(np.argmin(ctx.outcome_loss)))
+
+
+def _smoothed(ctx: WeightContext):
+    u, v, _ = smoothed_pair_weights(ctx.base_Psi, ctx.pair_se, ctx.base_masks)
+    return u, v
 
 
 COMPARISONS: tuple[Comparison, ...] = (
@@ -125,11 +166,26 @@ COMPARISONS: tuple[Comparison, ...] = (
         "prediction-loss",
         lambda ctx: (ctx.stack_alpha, ctx.stack_beta),
         blend="probability",
+        learners="base",
         replicate="linearised",
     ),
-    Comparison(BEST, "single pair", _best_predicting),
-    Comparison(MIXED_PAIR, "single pair", lambda ctx: ctx.vertex(*ctx.pairs[MIXED_PAIR])),
-    Comparison(MINIMAX_PAIR, "single pair", lambda ctx: ctx.vertex(*ctx.pairs[MINIMAX_PAIR])),
+    Comparison(BEST, "single pair", _best_predicting, learners="base"),
+    Comparison(
+        MIXED_PAIR,
+        "single pair",
+        lambda ctx: ctx.vertex(*ctx.pairs[MIXED_PAIR]),
+        learners="base",
+    ),
+    Comparison(
+        MINIMAX_PAIR,
+        "single pair",
+        lambda ctx: ctx.vertex(*ctx.pairs[MINIMAX_PAIR]),
+        learners="base",
+    ),
+    # The pair weights w_kj = u_k v_j factorise (see smoothed_pair_weights), so the marginal
+    # weights (u, v) shown for this row are exact: the pair average is the riesz blend at them,
+    # whatever blend the search uses, and its Wald SE comes from the averaged pairs' rows.
+    Comparison(SMOOTHED, "pair average", _smoothed, blend="riesz", learners="base"),
 )
 
 #: Row order of every table and report (study-only rows last).
@@ -142,8 +198,9 @@ def active_comparisons(settings: SearchSettings) -> tuple[Comparison, ...]:
 
 
 def comparison_weights(ctx: WeightContext) -> dict:
-    """``name -> (alpha, beta, blend, kind)`` of every shown comparison estimator, main first."""
+    """``name -> (alpha, beta, blend, kind, base)`` of every shown comparison estimator, main
+    first; ``base`` says that alpha is over the library's own learners only."""
     return {
-        c.name: (*c.weights(ctx), c.row_blend(ctx.settings), c.kind)
+        c.name: (*c.weights(ctx), c.row_blend(ctx.settings), c.kind, c.learners == "base")
         for c in active_comparisons(ctx.settings)
     }

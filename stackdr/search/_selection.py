@@ -9,7 +9,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from stackdr.core import minimax_risk, mixed_risk
+from stackdr.core import minimax_risk, mixed_risk, outcome_sensitivity, weight_sensitivity
 from stackdr.search._weights import search_weights
 
 CRITERIA = ("mixed", "minimax")
@@ -58,6 +58,69 @@ def discrete_pairs(Psi: np.ndarray, masks) -> dict:
         "mixed-minimax pair": np.unravel_index(int(np.argmin(mix)), Psi.shape),
         "minimax pair": np.unravel_index(int(np.argmin(mm)), Psi.shape),
     }
+
+
+def smoothed_pair_weights(
+    Psi: np.ndarray, pair_se: np.ndarray, masks, tau: float = 1.0
+) -> tuple[np.ndarray, np.ndarray, float]:
+    """Pair weights of the smoothed (model-averaging) selector over single pairs.
+
+    The selector averages the pair estimates with weights ``w_kj`` proportional to
+    ``exp(-tau R_mix(k, j) / scale)``, where ``R_mix(k, j) = S_out(e_k)^2 + S_ps(e_j)^2`` is the
+    mixed-minimax criterion at the vertex (k, j) (the range of row k of the pair table squared
+    plus the range of column j squared, over the direction learners; as in
+    :func:`discrete_pairs`). Replacing the discrete choice of one pair by this exponentially
+    weighted average is the smooth approximation of the selector that Cui & Tchetgen Tchetgen
+    (arXiv:1911.02029) describe for post-selection inference: unlike the choice of one pair, the
+    estimate moves continuously with the pair table.
+
+    Rule: ``tau = 1`` and ``scale = max(min_kj R_mix(k, j), 0.01 x median_kj SE_kj^2)``.
+    Scaling by the best pair's own pseudo-risk makes the weights unit-free and relative to what
+    the best pair attains: a pair whose risk exceeds the best one's by that same amount gets
+    ``exp(-1)`` times its weight. The floor, a hundredth of the typical sampling variance of one
+    pair estimate, keeps the scale positive when a pair has zero range. Of the three scales the
+    screening study tried (this one, the median squared pair SE, the squared SE of
+    prediction-loss stacking) it had the lowest RMSE in all six Kang-Schafer cells, though it
+    stayed above prediction-loss stacking with parametric libraries.
+
+    ``R_mix(k, j)`` is a term of k plus a term of j, so the pair weights factorise exactly:
+    ``w_kj = u_k v_j`` with ``u`` proportional to ``exp(-tau S_out(e_k)^2 / scale)`` and ``v``
+    proportional to ``exp(-tau S_ps(e_j)^2 / scale)``. The average ``sum_kj w_kj Psi[k, j]``
+    is therefore ``u' Psi v``, the riesz blend at propensity weights ``u`` and outcome weights
+    ``v``, and its row contributions ``sum_kj w_kj H_kj`` are those of that blend.
+
+    Parameters
+    ----------
+    Psi : numpy.ndarray (K1, K2)
+        Pair table.
+    pair_se : numpy.ndarray (K1, K2)
+        Influence-function SE of every pair (only their median enters, through the floor).
+    masks : (array or None, array or None)
+        Direction masks (propensity, outcome).
+    tau : float
+        Inverse temperature.
+
+    Returns
+    -------
+    u : numpy.ndarray (K1,)
+    v : numpy.ndarray (K2,)
+        Marginal weights whose outer product is the pair-weight matrix.
+    scale : float
+    """
+    prop_mask, out_mask = masks
+    row_risk = outcome_sensitivity(Psi, out_mask) ** 2  # S_out(e_k)^2, one per row
+    column_risk = weight_sensitivity(Psi.T, prop_mask) ** 2  # S_ps(e_j)^2, one per column
+    best = float(row_risk.min() + column_risk.min())
+    scale = max(best, 0.01 * float(np.median(np.asarray(pair_se) ** 2)))
+
+    def normalised(risk: np.ndarray) -> np.ndarray:
+        excess = risk - risk.min()
+        # A zero scale (every SE zero and a pair of zero range) is the limit of a vanishing
+        # temperature: equal weight on the minimisers.
+        w = np.exp(-tau * excess / scale) if scale > 0 else (excess == 0).astype(float)
+        return w / w.sum()
+
+    return normalised(row_risk), normalised(column_risk), scale
 
 
 def run_search(Psi, settings: SearchSettings, *, phi=None, anchors, tolerance, masks):

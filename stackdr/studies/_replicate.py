@@ -188,7 +188,7 @@ def simulate_replicate(
                 "low": row.low,
                 "high": row.high,
                 "weights": {
-                    "propensity": dict(zip(cf.propensity_names, map(float, row.alpha))),
+                    "propensity": dict(zip(result.propensity_names, map(float, row.alpha))),
                     "outcome": dict(zip(cf.outcome_names, map(float, row.beta))),
                 },
                 "kind": row.kind,

@@ -7,9 +7,9 @@ from scipy.special import expit
 from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge
 
-from stackdr import BlendEstimator, Component, Target
+from stackdr import BlendEstimator
 from stackdr.errors import InputError
-from tests.helpers import KnownClassifier, KnownRegressor, confounded_data
+from tests.helpers import TREATED_MEAN, KnownClassifier, KnownRegressor, confounded_data
 
 
 def true_outcome(XA):
@@ -88,7 +88,9 @@ def test_comparison_table_and_summary(capsys):
         "minimax pair",
     } <= names
     assert (table["low"] < table["estimate"]).all() and (table["estimate"] < table["high"]).all()
-    assert len(res.comparison(include_pairs=True)) == len(table) + 4
+    # One row per pair of the search's table (the stacked propensity's pairs included).
+    assert res.pair_table.shape == (3, 2)
+    assert len(res.comparison(include_pairs=True)) == len(table) + res.pair_table.size
     assert set(res.losses["side"]) == {"propensity", "outcome"}
     assert res.alpha.sum() == pytest.approx(1.0) and (res.alpha >= 0).all()
     assert "<table" in res._repr_html_()
@@ -110,22 +112,9 @@ def test_blends_and_criteria_run(blend, criterion):
 def test_user_defined_target_matches_built_in():
     # A user declares E[Y(1)] through the public protocol; it must equal the built-in mean1.
     X, A, Y, _ = confounded_data(np.random.default_rng(9), 500)
-    mine = Target(
-        name="treated-mean",
-        description="mean outcome had everyone been treated",
-        components=(
-            Component(
-                outcome_head="mu1",
-                weight_transform=lambda pi: 1.0 / pi,
-                h1=lambda A, Y: -(A == 1).astype(float),
-                h2=lambda A, Y: np.ones_like(A),
-                h3=lambda A, Y: np.where(A == 1, Y, 0.0),
-            ),
-        ),
-    )
     prop = {"logit": LogisticRegression()}
     outc = {"ols": LinearRegression()}
-    a = BlendEstimator(mine, prop, outc, seed=1, bootstrap=0).fit(X, A, Y)
+    a = BlendEstimator(TREATED_MEAN, prop, outc, seed=1, bootstrap=0).fit(X, A, Y)
     b = BlendEstimator("mean1", prop, outc, seed=1, bootstrap=0).fit(X, A, Y)
     assert a.estimate == pytest.approx(b.estimate, rel=1e-12)
 

@@ -41,7 +41,8 @@ def test_diagnostics_from_the_ingredients(result):
     diag = result.diagnostics
     assert isinstance(diag, Diagnostics)
     A = result.data.A
-    probs, alpha = result.crossfit.propensity[0], result.alpha.to_numpy()
+    # The search's propensity columns: the learners' and the stacked propensity.
+    probs, alpha = result.analysis.inputs[0].pi, result.alpha.to_numpy()
     pi = probs @ alpha
     np.testing.assert_array_equal(diag.blended_propensity, pi)
     # Riesz blend of the ATE weight side (DESIGN sections 1 and 3): treated rows weigh

@@ -29,7 +29,7 @@ def _row_weights(n: int, count: int) -> np.ndarray:
 
 @pytest.mark.parametrize("blend", ["logit", "probability"])
 def test_weighted_and_lattice_phi_match_generic_phi(small_fit, blend):
-    inp = small_fit[1].analysis.inputs[0]
+    inp = small_fit[1].analysis.base_inputs[0]
     W = _row_weights(inp.n, 3)
     points = simplex_lattice(3, 20)
     batched = lattice_phi(inp, blend, W, points, batch=50)
@@ -68,8 +68,10 @@ def _linprog_model(original):
 def test_replicate_search_matches_slow_reference(small_fit, monkeypatch, blend, criterion):
     result = small_fit[1]
     an = result.analysis
-    inp = an.inputs[0]
-    K1, K2 = an.Psi.shape
+    # The search over the library's learners (the slow reference has no stacked column).
+    inp = an.base_inputs[0]
+    K1, K2 = an.base_learners, an.Psi.shape[1]
+    masks = (None if an.masks[0] is None else an.masks[0][:K1], an.masks[1])
     settings = SearchSettings(criterion=criterion, blend=blend)
     taus = _fixed_tolerances(result)
     # Unit weights (the full sample) and three multinomial replicates.
@@ -85,7 +87,7 @@ def test_replicate_search_matches_slow_reference(small_fit, monkeypatch, blend, 
             phi=phi_fn,
             anchors=(an.stack_alpha, an.stack_beta),
             tolerance=taus,
-            masks=an.masks,
+            masks=masks,
         )
 
     fast, slow = [], []

@@ -2,10 +2,12 @@
 chunking and workers, weights on the simplex in every replicate."""
 
 from dataclasses import replace
+from types import SimpleNamespace
 
 import numpy as np
 import pytest
 from scipy import stats
+from sklearn.base import clone
 from sklearn.dummy import DummyClassifier, DummyRegressor
 from sklearn.linear_model import LinearRegression, LogisticRegression
 
@@ -117,33 +119,93 @@ def test_refit_bootstrap_runs():
     assert res.interval_method == "percentile"
 
 
+def _expansion_case(small_fit, seed: int) -> SimpleNamespace:
+    """For the expansion tests: the small fit's learners' inputs, one multinomial draw of row
+    weights ``w``, the weighted sums ``w' F`` of the replicate features, and propensity weights
+    moved from the stacking weights by 0.04 and 0.02 in one random direction (a second-order
+    error shrinks about 4x from the first to the second)."""
+    from stackdr.inference._reweighting import _Layout, replicate_features
+
+    _, res = small_fit
+    an = res.analysis
+    inp = an.base_inputs[0]
+    K1, K2 = an.base_learners, an.Psi.shape[1]
+    F = replicate_features(inp, res.crossfit, res.data, 0, an.stack_alpha)
+    rng = np.random.default_rng(seed)
+    w = np.bincount(rng.integers(0, inp.n, inp.n), minlength=inp.n).astype(float)
+    direction = rng.normal(size=K1)
+    direction -= direction.mean()
+    moved = []
+    for size in (0.04, 0.02):
+        alpha = np.clip(an.stack_alpha + size * direction / np.abs(direction).max(), 0, None)
+        moved.append(alpha / alpha.sum())
+    return SimpleNamespace(
+        res=res,
+        inp=inp,
+        shape=(K1, K2),
+        slices=_Layout(K1, K2, True).slices(),
+        w=w,
+        sums=(w @ F)[None],
+        moved=moved,
+        rng=rng,
+    )
+
+
 def test_prediction_loss_expansion_matches_exact_weighted_estimate(small_fit):
     # The replicate estimate of prediction-loss stacking uses a first-order expansion in the
     # propensity weights; its error must be second order: far below the estimate's SE for
     # bootstrap-sized weight changes, and shrinking ~4x when the change halves.
     from stackdr.core import phi
-    from stackdr.inference._reweighting import _Layout, _pls_estimates, replicate_features
+    from stackdr.inference._reweighting import _pls_estimates
 
-    _, res = small_fit
-    an, cf = res.analysis, res.crossfit
-    inp = an.inputs[0]
-    K1, K2 = an.Psi.shape
-    F = replicate_features(inp, cf, res.data, 0, an.stack_alpha)
-    sl = _Layout(K1, K2, True).slices()
-    rng = np.random.default_rng(0)
-    w = np.bincount(rng.integers(0, inp.n, inp.n), minlength=inp.n).astype(float)
-    beta = rng.dirichlet(np.ones(K2))
-    direction = rng.normal(size=K1)
-    direction -= direction.mean()
+    case = _expansion_case(small_fit, 0)
+    a0 = case.res.analysis.stack_alpha
+    beta = case.rng.dirichlet(np.ones(case.shape[1]))
     errors = []
-    for size in (0.04, 0.02):
-        alpha = an.stack_alpha + size * direction / np.abs(direction).max()
-        alpha = np.clip(alpha, 0, None)
-        alpha /= alpha.sum()
-        exact = phi(inp, alpha[None], "probability", w)[0] @ beta
-        approx = _pls_estimates((w @ F)[None], sl, K1, K2, alpha[None], beta[None], an.stack_alpha)[
-            0
-        ]
+    for alpha in case.moved:
+        exact = phi(case.inp, alpha[None], "probability", case.w)[0] @ beta
+        approx = _pls_estimates(case.sums, case.slices, *case.shape, alpha[None], beta[None], a0)[0]
         errors.append(abs(approx - exact))
-    assert errors[0] < 0.05 * res.se
+    assert errors[0] < 0.05 * case.res.se
     assert errors[1] < errors[0] / 2.5 or errors[0] < 1e-10
+
+
+def test_stacked_column_of_a_replicate_matches_exact_recomputation(small_fit):
+    # A replicate's row of the stacked propensity in the pair table is the first-order expansion
+    # of psi(pi @ a, e_j) in the stacking weights a around the full-sample weights a0
+    # (_stacked_rows, from the prediction-loss stacking terms). Reference: the exact value,
+    # which recomputes the column pi @ a over every row and the weighted pair table. The error
+    # is second order: none at a = a0, far below the SE for bootstrap-sized changes of a, and
+    # about 4x smaller when the change halves.
+    from stackdr.core import pair_table, with_stacked_propensity
+    from stackdr.inference._reweighting import _stacked_rows
+
+    case = _expansion_case(small_fit, 3)
+    assert case.res.analysis.stacked
+    a0 = case.res.analysis.stack_alpha
+
+    def exact(alpha):
+        return pair_table(with_stacked_propensity(case.inp, alpha), case.w)[-1]
+
+    def approx(alpha):
+        return _stacked_rows(case.sums, case.slices, *case.shape, alpha[None], a0)[0]
+
+    np.testing.assert_allclose(approx(a0), exact(a0), rtol=1e-12)
+    errors = [np.abs(approx(alpha) - exact(alpha)).max() for alpha in case.moved]
+    assert errors[0] < 0.05 * case.res.se
+    assert errors[1] < errors[0] / 2.5 or errors[0] < 1e-10
+
+
+def test_bootstrap_with_the_stacked_column(small_fit):
+    # Every replicate searches over the learners and the stacked propensity; the weights sum to
+    # one over those columns, and the rows over the learners match a fit without the column.
+    est, res = small_fit
+    settings = replace(est.inference_settings(), replicates=40)
+    boot = reweighting_bootstrap(settings, res)
+    assert list(boot.alpha.columns) == res.propensity_names
+    np.testing.assert_allclose(boot.alpha.sum(axis=1), 1.0)
+    plain = clone(est).set_params(stacked_propensity=False)
+    other = plain.fit(res.data.X, res.data.A, res.data.Y)
+    again = reweighting_bootstrap(replace(plain.inference_settings(), replicates=40), other)
+    for name in ("prediction-loss stacking", "best-predicting pair", "smoothed pair average"):
+        np.testing.assert_array_equal(boot.estimates[name], again.estimates[name])

@@ -80,8 +80,9 @@ def test_weight_side_matches_blended_propensity(data):
         np.testing.assert_allclose(table["weight_mu0"], 1 / (1 - pi))
     riesz = fit(data, "ate", blend="riesz")
     table = blended_nuisances(riesz)
-    P, alpha = riesz.crossfit.propensity[0], riesz.alpha.to_numpy()
-    # The riesz blend averages the inverse propensities themselves.
+    # The search's propensity columns (the learners', then the stacked propensity); the riesz
+    # blend averages the inverse propensities themselves.
+    P, alpha = riesz.analysis.inputs[0].pi, riesz.alpha.to_numpy()
     np.testing.assert_allclose(table["weight_mu1"], (1 / P) @ alpha)
     np.testing.assert_allclose(table["weight_mu0"], (1 / (1 - P)) @ alpha)
     assert table["propensity_scale"].iloc[0].startswith("probability-scale")

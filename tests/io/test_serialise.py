@@ -16,6 +16,7 @@ from stackdr.io import (
     validate_results,
     write_results_json,
 )
+from stackdr.search import STACKED_PROPENSITY
 from tests.helpers import MATH, SCRIPT, SHELL, hostile_fit
 
 
@@ -31,7 +32,7 @@ def test_dict_carries_the_fit(fitted):
     assert d["estimate"] == result.estimate
     assert (d["interval"]["low"], d["interval"]["high"]) == result.interval
     assert d["interval"]["method"] == "percentile"
-    assert d["pair_table"]["rows"] == [SCRIPT, "constant", MATH]
+    assert d["pair_table"]["rows"] == [SCRIPT, "constant", MATH, STACKED_PROPENSITY]
     assert d["pair_table"]["columns"] == [SHELL, "mean"]
     np.testing.assert_array_equal(d["pair_table"]["values"], result.pair_table.to_numpy())
     assert list(d["weights"]["propensity"].values()) == result.alpha.tolist()
@@ -55,7 +56,8 @@ def test_dict_carries_the_fit(fitted):
 def test_diagnostics_match_direct_computation(fitted):
     result, d = fitted
     diag = d["diagnostics"]
-    pi = result.crossfit.propensity[0] @ result.alpha.to_numpy()
+    # The search's propensity columns: the learners' and the stacked propensity.
+    pi = result.analysis.inputs[0].pi @ result.alpha.to_numpy()
     A = result.data.A
     for arm, rows in (("treated", A == 1), ("control", A == 0)):
         assert diag["arm_sizes"][arm] == rows.sum()
@@ -64,7 +66,7 @@ def test_diagnostics_match_direct_computation(fitted):
     # Riesz blend of the ATE weight side: treated rows weigh sum_k alpha_k / pi_k, controls
     # sum_k alpha_k / (1 - pi_k) (DESIGN sections 1 and 3); effective sample size by Kish's
     # formula (Kish 1965, Survey Sampling): (sum w)^2 / sum w^2.
-    probs, alpha = result.crossfit.propensity[0], result.alpha.to_numpy()
+    probs, alpha = result.analysis.inputs[0].pi, result.alpha.to_numpy()
     w1 = (1 / probs[A == 1]) @ alpha
     w0 = (1 / (1 - probs[A == 0])) @ alpha
     ess = diag["effective_sample_size"]
@@ -149,7 +151,7 @@ def _mutations():
         (setter(["weights", "outcome"], [0.5, 0.5]), "weights.outcome must be an object"),
         (setter(["cautions"], "careful"), "cautions must be a list"),
         (setter(["schema"], "stackdr-results/99"), "unsupported results schema"),
-        (lambda d: d["pair_table"]["values"].pop(), r"pair_table.values must be 3 x 2"),
+        (lambda d: d["pair_table"]["values"].pop(), r"pair_table.values must be 4 x 2"),
         (
             lambda d: d["weights"].update(outcome={"mean": 0.5, SHELL: 0.5}),
             "weights.outcome must name the learners",

@@ -194,18 +194,22 @@ def test_landscape_ternary_for_three_learners_and_edges_for_two(results, report_
     V, names, _, chosen, _ = side_inputs(results, "outcome")
     np.testing.assert_array_equal(V, np.array(results["pair_table"]["values"]).T)
     assert names == [SHELL, "mean"] and chosen.sum() == pytest.approx(1.0)
+    # Three propensity columns: the same learners without the stacked propensity.
+    unstacked = result_to_dict(hostile_fit(bootstrap=0, stacked_propensity=False))
+    assert len(unstacked["pair_table"]["rows"]) == 3
     with figure_style():
-        fig = landscape(results)
+        fig = landscape(unstacked)
     prop_ax, out_ax = fig.axes[:2]  # the ternary map's colour bar comes last
     assert any(isinstance(c, ContourSet) for c in prop_ax.collections)  # filled contours
     assert len(out_ax.get_lines()) == 1  # the single edge between the two outcome learners
     t, values = out_ax.get_lines()[0].get_data()
-    Psi = np.array(results["pair_table"]["values"])
+    Psi = np.array(unstacked["pair_table"]["values"])
     np.testing.assert_allclose(
         values, np.ptp(np.outer(1 - t, Psi[:, 0]) + np.outer(t, Psi[:, 1]), axis=1)
     )
     page = (report_dir / "report.html").read_text(encoding="utf-8")
-    assert "Propensity side (3 learners): a ternary map" in page
+    # The default search adds the stacked propensity: four columns, shown as edge slices.
+    assert "Propensity side (4 learners): edge slices" in page
     assert "Outcome side (2 learners): edge slices" in page
     assert "linear (riesz) blend" in page
 
