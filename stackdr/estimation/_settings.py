@@ -184,7 +184,7 @@ _TABLE = (
     ),
     Setting(
         "tie_break_scale",
-        0.5,
+        1.0,
         "number",
         "tie-break tolerance in standard errors",
         low=0,

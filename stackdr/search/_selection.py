@@ -30,7 +30,7 @@ class SearchSettings:
     criterion: str = "mixed"
     blend: str = "riesz"
     tie_break: bool = True
-    tie_break_scale: float = 0.5
+    tie_break_scale: float = 1.0
     resolution: int | None = None
 
 
