@@ -377,12 +377,15 @@ class BlendEstimator(BaseEstimator):
     def _row(self, name, an: Analysis, alpha, beta, blend, kind) -> EstimatorRow:
         vals = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
         est, se = combine_repeats([v.estimate for v in vals], [v.se for v in vals])
-        phi_alpha = phi_function(an.inputs, an.settings.blend)(np.asarray(alpha)[None])[0]
+        # The row's own blend: a row that blends propensities differently from the search
+        # (prediction-loss stacking) is judged by the criterion of the nuisances it used.
+        phi_alpha = phi_function(an.inputs, blend)(np.asarray(alpha)[None])[0]
         chi_beta = an.Psi @ beta
         risk = pseudo_risk(an.settings.criterion, phi_alpha, chi_beta, phi_alpha @ beta, an.masks)
         return EstimatorRow(
-            name, kind, est, se, np.asarray(alpha), np.asarray(beta), risk, self.level
+            name, kind, est, se, np.asarray(alpha), np.asarray(beta), risk, self.level, blend=blend
         )
+
 
 def combine_repeats(estimates, ses) -> tuple[float, float]:
     """Median over repeated splits, with the spread-adjusted SE of Chernozhukov et al. (2018)."""

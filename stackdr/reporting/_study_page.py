@@ -16,7 +16,8 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
-from stackdr.reporting._figures import (
+from stackdr.reporting._html import escape, figure, page, paragraph, table
+from stackdr.reporting._style import (
     MAIN_COLOUR,
     OTHER_COLOUR,
     STACK_COLOUR,
@@ -24,7 +25,6 @@ from stackdr.reporting._figures import (
     label,
     render_png,
 )
-from stackdr.reporting._html import escape, figure, page, paragraph, table
 from stackdr.search import ESTIMATOR_ORDER
 from stackdr.studies import read_results, read_study_record, summarise_study
 
@@ -122,6 +122,7 @@ def summary_text(summary: pd.DataFrame) -> str:
 
 
 # ------------------------------------------------------------------------------------ ordering
+
 
 # The comparison table's order; other estimators (user replicate functions) follow by name.
 def _estimator_rank(name: str) -> tuple[int, str]:
