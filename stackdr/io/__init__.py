@@ -15,6 +15,7 @@ from stackdr.io._export import (
     blended_models,
     blended_nuisances,
 )
+from stackdr.io._provenance import input_record, provenance, relative_path, versions
 from stackdr.io._results_json import (
     atomic_write,
     plain,
@@ -36,12 +37,16 @@ __all__ = [
     "check_setting",
     "estimator_kwargs",
     "field_reference",
+    "input_record",
     "load_config",
     "plain",
+    "provenance",
     "read_results_json",
+    "relative_path",
     "resolve_settings",
     "result_to_dict",
     "results_schema",
     "validate_results",
+    "versions",
     "write_results_json",
 ]
