@@ -122,19 +122,27 @@ def _job(r: dict) -> str:
         "Each learner's loss on rows it was not trained on (lower is better) and its weight in "
         "prediction-loss stacking."
     )
+    learners = diag["learners"]
+    # Each side's losses in one format: a log-loss and a squared error share no scale.
+    losses = {}
+    for side in {x["side"] for x in learners}:
+        rows = [i for i, x in enumerate(learners) if x["side"] == side]
+        texts = column_text([learners[i]["loss"] for i in rows], _digits(r))
+        losses.update(zip(rows, texts))
     out += table(
         ["side", "learner", "loss", "metric", "stacking weight", "fit seconds"],
         [
             [
                 x["side"],
                 x["learner"],
-                x["loss"],
+                losses[i],
                 x["metric"],
                 x["stacking_weight"],
                 x["fit_seconds"],
             ]
-            for x in diag["learners"]
+            for i, x in enumerate(learners)
         ],
+        align_right={"loss"},
         digits=_digits(r),
     )
     if diag["failed_learners"]:

@@ -159,7 +159,8 @@ def figure(
     links = ""
     if files:
         image = f'<a href="{escape(next(iter(files.values())))}">{image}</a>'
-        links = " Full size: " + ", ".join(
+        links = "" if caption.endswith((".", "?", "!")) else "."
+        links += " Full size: " + ", ".join(
             f'<a href="{escape(path)}">{escape(kind)}</a>' for kind, path in files.items()
         )
     return f"<figure{anchor}>{image}\n<figcaption>{escape(caption)}{links}</figcaption></figure>\n"
