@@ -52,6 +52,19 @@ def _rows(result) -> list[dict]:
     ]
 
 
+# Since issue 13 a row whose blend differs from the search's (prediction-loss stacking, which
+# blends on the probability scale) reports the criterion for its own blend; the recorded values
+# used the search's blend. Estimates, SEs, intervals and weights must still match bit for bit.
+OWN_BLEND_ROWS = {"prediction-loss stacking"}
+
+
+def _comparable(rows: list) -> list:
+    return [
+        {k: v for k, v in row.items() if not (k == "pseudo_risk" and row["name"] in OWN_BLEND_ROWS)}
+        for row in rows
+    ]
+
+
 @pytest.mark.parametrize("bootstrap", [0, 100])
 def test_demo_unchanged(bootstrap):
     frame, _ = simulate_demo()
@@ -60,7 +73,7 @@ def test_demo_unchanged(bootstrap):
         result = BlendEstimator("ate", bootstrap=bootstrap, seed=0, **PINNED).fit(
             frame, "programme", "sbp_change"
         )
-    assert _rows(result) == RECORDED[f"demo_b{bootstrap}"]
+    assert _comparable(_rows(result)) == _comparable(RECORDED[f"demo_b{bootstrap}"])
 
 
 @pytest.mark.parametrize("target", ["ate", "att"])
@@ -74,7 +87,7 @@ def test_nsw_unchanged(target):
         result = BlendEstimator(target, folds=3, bootstrap=50, seed=1, **PINNED).fit(
             frame, "treat", "re78", NSW_COVARIATES
         )
-    assert _rows(result) == RECORDED[f"nsw_{target}"]
+    assert _comparable(_rows(result)) == _comparable(RECORDED[f"nsw_{target}"])
 
 
 @pytest.mark.parametrize("library", ["parametric", "default"])
@@ -90,4 +103,5 @@ def test_kang_schafer_replicate_unchanged(library):
         for row in rows
         if row["name"] not in ADDED_ROWS
     ]
-    assert json.loads(json.dumps(got, sort_keys=True, default=str)) == RECORDED[f"ks_{library}"]
+    got = json.loads(json.dumps(got, sort_keys=True, default=str))
+    assert _comparable(got) == _comparable(RECORDED[f"ks_{library}"])

@@ -10,12 +10,11 @@ from __future__ import annotations
 
 import argparse
 import contextlib
-import csv
-import io
 import json
 import os
-import re
+import shlex
 import sys
+import textwrap
 import traceback
 import warnings
 from pathlib import Path
@@ -32,127 +31,26 @@ from stackdr.cli._common import (
     cluster_from_args,
     common_options,
 )
+from stackdr.cli._read import CSV_SUFFIXES, PARQUET_SUFFIXES, read_table
 from stackdr.cli._study import register as register_study
 from stackdr.errors import InputError, StackdrError
-from stackdr.estimation import CAUTION, CONFIG_SETTINGS
-from stackdr.io import SETTINGS, estimator_kwargs, load_config, resolve_settings
-
-CSV_SUFFIXES = (".csv", ".tsv", ".txt")
-PARQUET_SUFFIXES = (".parquet", ".pq")
-DELIMITERS = (",", ";", "\t", "|")
-_DECIMAL_COMMA = re.compile(r"^[-+]?\d+(,\d+)?([eE][-+]?\d+)?$")
-
-
-# ----------------------------------------------------------------------------- reading data
-
-
-def _sniff_delimiter(sample: str) -> str:
-    """The first of , ; tab | that splits the sample's lines into a constant number (> 1) of
-    quoted-aware fields; comma when none does."""
-    lines = sample.splitlines()
-    if len(lines) > 1 and not sample.endswith(("\n", "\r")):
-        lines = lines[:-1]  # the sample may end mid-line
-    lines = [line for line in lines[:50] if line.strip()]
-    for delimiter in DELIMITERS:
-        widths = {len(row) for row in csv.reader(lines, delimiter=delimiter)}
-        if len(widths) == 1 and widths.pop() > 1:
-            return delimiter
-    return ","
-
-
-def _numeric_text_columns(frame: pd.DataFrame, decimal_comma: bool) -> pd.DataFrame:
-    """Turn text columns holding only numbers (quoted, padded, or with a decimal comma in a
-    semicolon file) into numbers, so they are not mistaken for categories."""
-    for col in frame.columns:
-        series = frame[col]
-        if (
-            pd.api.types.is_numeric_dtype(series)
-            or series.dtype == bool
-            or not series.notna().any()
-        ):
-            continue
-        text = series.where(series.isna(), series.astype(str).str.strip())
-        if decimal_comma and text.dropna().str.match(_DECIMAL_COMMA).all():
-            text = text.str.replace(",", ".", regex=False)
-        converted = pd.to_numeric(text, errors="coerce")
-        if converted.notna().sum() == series.notna().sum():
-            frame[col] = converted
-    return frame
-
-
-def read_table(path: str | Path) -> pd.DataFrame:
-    """Read a CSV or Parquet data file (chosen by extension).
-
-    CSV files are read robustly: a UTF-8 byte-order mark is dropped (Latin-1 is the fallback
-    for files that are not UTF-8), the delimiter (comma, semicolon, tab or bar) is detected
-    from the first lines, quoted or padded numbers are read as numbers, and in semicolon files
-    a decimal comma is accepted. Column names are stripped of surrounding spaces.
-
-    Parameters
-    ----------
-    path : str or Path
-
-    Returns
-    -------
-    DataFrame
-
-    Raises
-    ------
-    InputError
-        Missing, empty or unreadable file, or an unsupported extension.
-    """
-    path = Path(path)
-    label = f"data file {str(path)!r}"
-    if not path.exists():
-        raise InputError(f"{label} not found")
-    if path.is_dir():
-        raise InputError(f"{label} is a folder, not a file")
-    suffix = path.suffix.lower()
-    if suffix in PARQUET_SUFFIXES:
-        try:
-            frame = pd.read_parquet(path)
-        except (OSError, ValueError, ImportError) as exc:
-            raise InputError(f"cannot read {label} as Parquet: {exc}") from None
-    elif suffix in CSV_SUFFIXES:
-        raw = path.read_bytes()
-        try:
-            text = raw.decode("utf-8-sig")
-        except UnicodeDecodeError:
-            text = raw.decode("latin-1")
-        if not text.strip():
-            raise InputError(f"{label} is empty")
-        delimiter = "\t" if suffix == ".tsv" else _sniff_delimiter(text[:65536])
-        # pandas renames a repeated header ("x", "x.1") silently; a repeated name is ambiguous.
-        try:
-            first = next(csv.reader(io.StringIO(text), delimiter=delimiter))
-        except csv.Error as exc:
-            raise InputError(f"cannot read {label} as CSV: {exc}") from None
-        header = [h.strip() for h in first]
-        repeated = sorted({h for h in header if header.count(h) > 1})
-        if repeated:
-            raise InputError(
-                f"{label} has duplicated column names: {', '.join(map(repr, repeated))}"
-            )
-        try:
-            frame = pd.read_csv(io.StringIO(text), sep=delimiter, skipinitialspace=True)
-        except (pd.errors.ParserError, pd.errors.EmptyDataError, ValueError) as exc:
-            message = str(exc).strip().splitlines()[-1] if str(exc).strip() else "parse error"
-            raise InputError(f"cannot read {label} as CSV: {message}") from None
-        frame = _numeric_text_columns(frame, decimal_comma=delimiter == ";")
-    else:
-        raise InputError(
-            f"{label} has extension {path.suffix or '(none)'!r}; give a .csv or .parquet file"
-        )
-    frame.columns = [str(c).strip() for c in frame.columns]
-    if len(frame) == 0:
-        raise InputError(f"{label} has column names but no data rows")
-    return frame
-
+from stackdr.estimation import CAUTION, CONFIG_SETTINGS, DEFAULT_DIGITS, LINE_WIDTH, wrapped
+from stackdr.io import (
+    SETTINGS,
+    estimator_kwargs,
+    input_record,
+    load_config,
+    provenance,
+    relative_path,
+    resolve_settings,
+)
 
 # ----------------------------------------------------------------------------- writing results
 
 
-def _write_outputs(result, out_dir: Path, *, overwrite: bool, run: dict) -> dict:
+def _write_outputs(
+    result, out_dir: Path, *, overwrite: bool, run: dict, provenance: dict, presentation: dict
+) -> dict:
     """nuisances.csv and the report first, results.json last (atomically), so an interrupted
     run leaves no results.json behind and a rerun needs no --overwrite."""
     from stackdr.io import (
@@ -164,25 +62,57 @@ def _write_outputs(result, out_dir: Path, *, overwrite: bool, run: dict) -> dict
     )
     from stackdr.reporting import write_report
 
-    results = result_to_dict(result)
+    table = blended_nuisances(result)
+    run["nuisances_propensity_scale"] = table.attrs["propensity_scale"]
+    results = result_to_dict(result, provenance=provenance, **presentation)
     results["run"] = run
     # The report is built from exactly what results.json will hold, so `stackdr report`
     # rebuilds it byte for byte.
     results = json.loads(json.dumps(plain(results, "results"), allow_nan=False))
     out_dir.mkdir(parents=True, exist_ok=True)
-    table = blended_nuisances(result)
     nuisances = atomic_write(
         out_dir / "nuisances.csv", table.to_csv(index=False).encode("utf-8"), overwrite=True
     )
     report = write_report(results, out_dir)
     written = write_results_json(results, out_dir / "results.json", overwrite=overwrite)
-    return {"results": written, "report": report, "nuisances": nuisances}
+    return {
+        "results": written,
+        "report": report,
+        "figures": out_dir / "figures",
+        "tables": out_dir / "tables",
+        "nuisances": nuisances,
+    }
 
 
 def _print_written(paths: dict) -> None:
     print("Written:")
     for label, path in paths.items():
         print(f"  {label:<10} {path}")
+
+
+def provenance_footer(results_provenance: dict) -> str:
+    """The printed provenance: data file and hash, time, versions, within 100 characters."""
+    prov = results_provenance
+    source = prov["input"]
+    versions = ", ".join(f"{k} {v}" for k, v in prov["versions"].items() if v is not None)
+    lines = ["Provenance:"]
+    if source is not None:
+        lines.append(
+            f"  data {source['path']} ({source['rows']} rows x {source['columns']} columns), "
+            f"SHA-256 {source['sha256']}"
+        )
+    lines.append(f"  created {prov['created_utc']} (UTC)")
+    lines.append(
+        textwrap.fill(versions, LINE_WIDTH, initial_indent="  versions: ", subsequent_indent="    ")
+    )
+    return "\n".join(line if len(line) <= LINE_WIDTH else wrapped(line, "    ") for line in lines)
+
+
+def _presentation(values: dict) -> dict:
+    return {
+        "outcome_label": values.get("outcome_label"),
+        "digits": values.get("digits", DEFAULT_DIGITS),
+    }
 
 
 # ----------------------------------------------------------------------------- commands
@@ -195,6 +125,7 @@ def _run_estimate(args: argparse.Namespace) -> int:
     config = load_config(args.config) if args.config else None
     given = {key: getattr(args, key, None) for key in SETTINGS}
     values, _ = resolve_settings(given, config)
+    _check_swallowed_data(values)
     for key in CLI_REQUIRED:
         if key not in values:
             how = "the DATA argument" if key == "data" else "--" + key
@@ -234,15 +165,38 @@ def _run_estimate(args: argparse.Namespace) -> int:
     result = estimator.fit(frame, treatment, values["outcome"], values.get("covariates"))
     run = {
         "command": "estimate",
-        "data_file": str(Path(values["data"]).resolve()),
-        "config_file": str(config.path.resolve()) if config and config.path else None,
+        "data_file": relative_path(values["data"], out_dir),
+        "config_file": relative_path(config.path, out_dir) if config and config.path else None,
         "learners": config.describe() if config else None,
     }
-    paths = _write_outputs(result, out_dir, overwrite=overwrite, run=run)
-    _print_written(paths)
+    prov = provenance(
+        result.created_utc,
+        command_line=args.command_line,
+        input=input_record(values["data"], out_dir, *frame.shape),
+    )
+    presentation = _presentation(values)
+    paths = _write_outputs(
+        result, out_dir, overwrite=overwrite, run=run, provenance=prov, presentation=presentation
+    )
+    print(result.summary(**presentation))
     print()
-    print(result.summary())
+    print(provenance_footer(prov))
+    print()
+    _print_written(paths)
     return 0
+
+
+def _check_swallowed_data(values: dict) -> None:
+    """``--covariates a b data.csv`` takes the file as a covariate; say so exactly."""
+    covariates = values.get("covariates") or []
+    if values.get("data") is None and covariates:
+        last = covariates[-1]
+        if Path(last).suffix.lower() in CSV_SUFFIXES + PARQUET_SUFFIXES or Path(last).is_file():
+            raise InputError(
+                f"--covariates took the data file {last!r} as a covariate name; put DATA before "
+                f"--covariates (stackdr estimate {last} ... --covariates ...) or end the list "
+                "with --"
+            )
 
 
 def _run_report(args: argparse.Namespace) -> int:
@@ -251,31 +205,30 @@ def _run_report(args: argparse.Namespace) -> int:
 
     source = Path(args.results)
     results = read_results_json(source)
+    if args.outcome_label is not None:
+        results["presentation"]["outcome_label"] = args.outcome_label
+    if args.digits is not None:
+        results["presentation"]["digits"] = args.digits
     out_dir = Path(args.out) if args.out else source.parent
-    print(f"Report written: {write_report(results, out_dir)}")
+    report = write_report(results, out_dir)
+    _print_written({"report": report, "figures": out_dir / "figures", "tables": out_dir / "tables"})
     return 0
 
 
 def learner_table() -> str:
-    """The learner catalogue as aligned text: name, kind, parameters (defaults), description."""
+    """The learner catalogue as text within 100 characters a line: name, kind and parameters
+    (defaults), then the description on indented lines."""
     from stackdr.estimation import CATALOGUE
 
-    rows = [
-        (
-            name,
-            entry.kind,
-            ", ".join(f"{k}={v!r}" for k, v in entry.defaults.items()) or "-",
-            entry.description,
+    lines = []
+    for name, entry in CATALOGUE.items():
+        params = ", ".join(f"{k}={v!r}" for k, v in entry.defaults.items()) or "no parameters"
+        lines.append(wrapped(f"{name} ({entry.kind}): {params}", "    "))
+        lines.append(
+            textwrap.fill(
+                entry.description, LINE_WIDTH, initial_indent="    ", subsequent_indent="    "
+            )
         )
-        for name, entry in CATALOGUE.items()
-    ]
-    heads = ("name", "kind", "parameters (defaults)", "description")
-    widths = [max(len(r[i]) for r in [heads, *rows]) for i in range(3)]
-    lines = [
-        "  ".join(f"{cell:<{w}}" for cell, w in zip(r[:3], widths)) + "  " + r[3]
-        for r in [heads, *rows]
-    ]
-    lines.insert(1, "-" * len(lines[0]))
     return "\n".join(lines)
 
 
@@ -288,8 +241,10 @@ def _run_learners(args: argparse.Namespace) -> int:
     print("  propensity: " + ", ".join(default_propensity_library()))
     print("  outcome:    " + ", ".join(default_outcome_library()))
     print(
-        'In a config file: [propensity.NAME] or [outcome.NAME] with learner = "<name>" and '
-        "any parameter above."
+        wrapped(
+            'In a config file: [propensity.NAME] or [outcome.NAME] with learner = "<name>" and '
+            "any parameter above."
+        )
     )
     return 0
 
@@ -316,7 +271,7 @@ def _run_demo(args: argparse.Namespace) -> int:
     from stackdr.studies import DESCRIPTION, simulate_demo
 
     frame, truth = simulate_demo(args.n, args.seed)
-    print(DESCRIPTION)
+    print(wrapped(DESCRIPTION))
     print(f"The data are simulated ({len(frame)} rows), so the true effect is known.\n")
     estimator = BlendEstimator(
         "ate",
@@ -327,23 +282,38 @@ def _run_demo(args: argparse.Namespace) -> int:
     )
     result = estimator.fit(frame, "programme", "sbp_change")
     out_dir = Path(args.out)
-    run = {"command": "demo", "simulated": True, "true_value": truth, "description": DESCRIPTION}
-    paths = _write_outputs(result, out_dir, overwrite=True, run=run)
+    # The simulated data are written first, so the provenance can name and hash them.
     data_path = atomic_write(
         out_dir / "demo_data.csv", frame.to_csv(index=False).encode("utf-8"), overwrite=True
     )
+    run = {"command": "demo", "simulated": True, "true_value": truth, "description": DESCRIPTION}
+    prov = provenance(
+        result.created_utc,
+        command_line=args.command_line,
+        input=input_record(data_path, out_dir, *frame.shape),
+    )
+    presentation = {"outcome_label": args.outcome_label, "digits": args.digits}
+    paths = _write_outputs(
+        result, out_dir, overwrite=True, run=run, provenance=prov, presentation=presentation
+    )
     paths["data"] = data_path
     print(
-        f"\nAverage effect of the programme on the 6-month change in systolic pressure (mmHg), "
+        f"\nAverage effect of the programme on the 6-month change in systolic pressure (mmHg)\n"
         f"n = {result.data.n}, simulated data\n"
     )
     print(truth_table(result, truth))
     print("\nWeights (target-aimed):")
-    print("  propensity " + "  ".join(f"{k} {v:.3f}" for k, v in result.alpha.items()))
-    print("  outcome    " + "  ".join(f"{k} {v:.3f}" for k, v in result.beta.items()))
+    for side, series in (("propensity", result.alpha), ("outcome", result.beta)):
+        text = "  ".join(f"{k} {v:.3f}" for k, v in series.items())
+        print(wrapped(f"  {side:<11}{text}", " " * 13))
+    for note in result.notes:
+        print(wrapped(note))
     print(f"Seconds: {result.timings.get('total', float('nan')):.1f}\n")
+    print(wrapped(f"Caution: {CAUTION}"))
+    print()
+    print(provenance_footer(prov))
+    print()
     _print_written(paths)
-    print(f"\nCaution: {CAUTION}")
     return 0
 
 
@@ -367,9 +337,12 @@ def register(subparsers) -> None:
     est.add_argument(
         "--config", metavar="FILE.toml", help="TOML file declaring learner libraries and settings"
     )
+    # The settings stackdr estimate needs may come from --config instead, so argparse cannot
+    # enforce them; their own group in --help shows that they are required.
+    required = est.add_argument_group("required (on the command line or in --config)")
     for key in CONFIG_SETTINGS:
         if key != "data":
-            add_setting_flag(est, key)
+            add_setting_flag(required if key in CLI_REQUIRED else est, key)
     add_cluster_options(est, "learner fits and the refit bootstrap")
     est.set_defaults(run=_run_estimate)
 
@@ -382,6 +355,17 @@ def register(subparsers) -> None:
     rep.add_argument("results", metavar="RESULTS", help="path to results.json")
     rep.add_argument(
         "--out", metavar="DIR", help="folder for the report (default: the folder of RESULTS)"
+    )
+    rep.add_argument(
+        "--outcome-label",
+        metavar="TEXT",
+        help="outcome label with unit for axes and table headers (default: the one in RESULTS)",
+    )
+    rep.add_argument(
+        "--digits",
+        type=int,
+        metavar="D",
+        help="significant digits in tables (default: the number in RESULTS)",
     )
     rep.set_defaults(run=_run_report)
 
@@ -404,7 +388,22 @@ def register(subparsers) -> None:
         "--out",
         default="stackdr-demo",
         metavar="DIR",
-        help="output folder, replaced if present (default stackdr-demo)",
+        help="output folder (default stackdr-demo); its results.json, report.html, figures/, "
+        "tables/, nuisances.csv and demo_data.csv are replaced, other files are left alone",
+    )
+    demo.add_argument(
+        "--outcome-label",
+        default="change in systolic pressure (mmHg)",
+        metavar="TEXT",
+        help="outcome label with unit for axes and table headers "
+        "(default 'change in systolic pressure (mmHg)')",
+    )
+    demo.add_argument(
+        "--digits",
+        type=int,
+        default=DEFAULT_DIGITS,
+        metavar="D",
+        help=f"significant digits in tables (default {DEFAULT_DIGITS})",
     )
     demo.add_argument(
         "--bootstrap",
@@ -455,7 +454,8 @@ def _short_warnings():
     """Show each warning as one ``stackdr: warning:`` line."""
 
     def show(message, category, filename, lineno, file=None, line=None):
-        print(f"stackdr: warning: {_one_line(Warning(message))}", file=sys.stderr)
+        text = f"stackdr: warning: {_one_line(Warning(message))}"
+        print(wrapped(text, "  "), file=sys.stderr)
 
     with warnings.catch_warnings():
         warnings.simplefilter("default")
@@ -480,10 +480,12 @@ def main(argv: list[str] | None = None) -> int:
     """Run the command line; returns the exit code (0 ok, 1 internal error, 2 user mistake)."""
     _quiet_child_processes()
     parser = build_parser()
+    argv = sys.argv[1:] if argv is None else list(argv)
     try:
         args = parser.parse_args(argv)
     except SystemExit as exc:
         return exc.code if isinstance(exc.code, int) else 2
+    args.command_line = shlex.join(["stackdr", *argv])
     debug = getattr(args, "debug", False)
     try:
         with _short_warnings():
@@ -505,5 +507,3 @@ def main(argv: list[str] | None = None) -> int:
             file=sys.stderr,
         )
         return 1
-
-

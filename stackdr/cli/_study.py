@@ -8,6 +8,8 @@ and an HTML page. Registered into the ``stackdr`` parser by :func:`register`.
 from __future__ import annotations
 
 import argparse
+import textwrap
+import warnings
 from pathlib import Path
 from typing import Any
 
@@ -20,6 +22,7 @@ from stackdr.cli._common import (
     common_options,
 )
 from stackdr.errors import InputError
+from stackdr.estimation import DEFAULT_DIGITS, LINE_WIDTH
 
 # Config-file settings a study cannot take: the design fixes data, columns and target, and where
 # files go is the study file's business.
@@ -94,6 +97,18 @@ def register(subparsers) -> None:
     stu.add_argument("study", metavar="STUDY.sqlite", help="study file written by simulate")
     stu.add_argument("--csv", metavar="FILE", help="write the summary table as CSV")
     stu.add_argument("--html", metavar="FILE", help="write an HTML page with figures")
+    stu.add_argument(
+        "--tables",
+        metavar="DIR",
+        help="write the summary as DIR/summary.tex (LaTeX, booktabs) and DIR/summary.md",
+    )
+    stu.add_argument(
+        "--digits",
+        type=int,
+        default=DEFAULT_DIGITS,
+        metavar="D",
+        help=f"significant digits in tables (default {DEFAULT_DIGITS})",
+    )
     stu.set_defaults(run=run_study_summary)
 
 
@@ -149,12 +164,15 @@ def _study_options(args: argparse.Namespace) -> tuple[Any, dict[str, Any], int]:
 
 def run_simulate(args: argparse.Namespace) -> int:
     """Handler of ``stackdr simulate``."""
-    from stackdr.reporting import text_table
 
     if args.list:
-        import pandas as pd
-
-        print(text_table(pd.DataFrame(_design_listing())))
+        for row in _design_listing():
+            print(f"{row['design']} (target {row['target']}, truth {row['truth']})")
+            print(
+                textwrap.fill(
+                    row["source"], LINE_WIDTH, initial_indent="    ", subsequent_indent="    "
+                )
+            )
         return 0
     missing = [
         flag
@@ -199,18 +217,44 @@ def run_simulate(args: argparse.Namespace) -> int:
 
 def run_study_summary(args: argparse.Namespace) -> int:
     """Handler of ``stackdr study``."""
-    from stackdr.reporting import html_report, ordered, summary_text
-    from stackdr.studies import summarise_study
+    from stackdr.reporting import (
+        few_replicates_note,
+        html_report,
+        latex,
+        markdown,
+        ordered,
+        study_tables,
+        summary_text,
+    )
+    from stackdr.studies import read_study_record, summarise_study
 
     path = Path(args.study)
     if not path.is_file():
         raise InputError(f"no study file at {str(path)!r}")
     summary = ordered(summarise_study(path))
-    print(summary_text(summary))
+    few = few_replicates_note(summary)
+    if few:
+        warnings.warn(few, stacklevel=1)
+    print(summary_text(summary, args.digits))
+    written = {}
     if args.csv:
         summary.to_csv(args.csv, index=False)
-        print(f"wrote {args.csv}")
+        written["csv"] = args.csv
     if args.html:
         Path(args.html).write_text(html_report(path, summary), encoding="utf-8")
-        print(f"wrote {args.html}")
+        written["html"] = args.html
+    if args.tables:
+        record = read_study_record(path)
+        settings = record.get("settings", {}).get("estimator", {})
+        tables = study_tables(summary, float(settings.get("level", 0.95)), args.digits)
+        folder = Path(args.tables)
+        folder.mkdir(parents=True, exist_ok=True)
+        for suffix, render in (("tex", latex), ("md", markdown)):
+            target = folder / f"summary.{suffix}"
+            target.write_text("\n".join(render(t) for t in tables), encoding="utf-8")
+            written[f"table ({suffix})"] = target
+    if written:
+        print("\nWritten:")
+        for what, where in written.items():
+            print(f"  {what:<12} {where}")
     return 0

@@ -21,6 +21,12 @@ from stackdr.estimation._learners import (
     parametric_outcome_library,
     parametric_propensity_library,
 )
+from stackdr.estimation._numbers import (
+    DEFAULT_DIGITS,
+    column_decimals,
+    column_text,
+    number_text,
+)
 from stackdr.estimation._parallel import (
     available_cores,
     check_cluster,
@@ -31,7 +37,14 @@ from stackdr.estimation._parallel import (
     threads_per_fit,
     worker_count,
 )
-from stackdr.estimation._results import CAUTION, BlendResult, EstimatorRow, ResultSummary
+from stackdr.estimation._results import (
+    BLEND_MEANINGS,
+    CAUTION,
+    NOT_SEPARATED,
+    BlendResult,
+    EstimatorRow,
+    utc_now,
+)
 from stackdr.estimation._settings import (
     BOOTSTRAP_KINDS,
     CONFIG_SETTINGS,
@@ -46,12 +59,22 @@ from stackdr.estimation._settings import (
     settings_record,
     validate_params,
 )
+from stackdr.estimation._summary import (
+    LINE_WIDTH,
+    ResultSummary,
+    estimate_unit,
+    interval_sentence,
+    outcome_unit,
+    units_sentence,
+    wrapped,
+)
 
 __all__ = [
     "available_cores",
     "native_threads",
     "threads_per_fit",
     "worker_count",
+    "BLEND_MEANINGS",
     "BOOTSTRAP_KINDS",
     "BlendEstimator",
     "BlendResult",
@@ -59,11 +82,14 @@ __all__ = [
     "CAUTION",
     "CONFIG_SETTINGS",
     "CrossFitResult",
+    "DEFAULT_DIGITS",
     "DIRECTIONS",
     "Diagnostics",
     "ESTIMATOR_PARAMS",
     "EstimatorRow",
     "INTERVALS",
+    "LINE_WIDTH",
+    "NOT_SEPARATED",
     "OVERLAP_EDGES",
     "OverlapHistogram",
     "PreparedData",
@@ -76,21 +102,30 @@ __all__ = [
     "check_library",
     "check_value",
     "close_match",
+    "column_decimals",
+    "column_text",
     "cross_fit",
     "dask_backend",
     "dask_jobs",
     "default_outcome_library",
     "default_propensity_library",
     "effective_sample_size",
+    "estimate_unit",
     "fit_diagnostics",
+    "interval_sentence",
     "make_folds",
     "make_learner",
+    "number_text",
+    "outcome_unit",
     "parallel_backend",
     "parametric_outcome_library",
     "parametric_propensity_library",
     "phi_function",
     "prepare_data",
     "settings_record",
+    "units_sentence",
+    "utc_now",
     "validate_params",
     "weight_side_values",
+    "wrapped",
 ]

@@ -99,15 +99,6 @@ class Analysis:
         alpha = np.asarray(alpha, dtype=float)
         return np.append(alpha, 0.0) if base and self.stacked else alpha
 
-    def risk_weights(self, alpha: np.ndarray, base: bool, blend: str) -> np.ndarray:
-        """Propensity weights over the search's columns at which a row's pseudo-risk is
-        evaluated: the weights shown, except that a probability-scale blend at the stacking
-        weights (prediction-loss stacking) is the stacked column's vertex, its own propensity."""
-        if self.stacked and base and blend == "probability":
-            if np.array_equal(alpha, self.stack_alpha):
-                return self.search_anchor(self.stack_alpha)
-        return self.search_weights(alpha, base)
-
 
 class BlendEstimator(BaseEstimator):
     """Target-aimed convex stacking of nuisance learners for a doubly robust target.
@@ -489,17 +480,22 @@ class BlendEstimator(BaseEstimator):
 
     def _row(self, name, an: Analysis, alpha, beta, blend, kind, base: bool) -> EstimatorRow:
         """A comparison row: the estimate on the inputs its weights are over; the weights shown
-        and the pseudo-risk (:meth:`Analysis.risk_weights`) over the search's propensity
+        and the pseudo-risk (at the row's own blend) over the search's propensity
         columns."""
         inputs = an.base_inputs if base else an.inputs
         vals = [blend_estimate(inp, alpha, beta, blend) for inp in inputs]
         est, se = combine_repeats([v.estimate for v in vals], [v.se for v in vals])
-        at = an.risk_weights(alpha, base, blend)
-        phi_alpha = phi_function(an.inputs, an.settings.blend)(at[None])[0]
+        weights = an.search_weights(alpha, base)
+        # The row's own blend: a row that blends propensities differently from the search
+        # (prediction-loss stacking) is judged by the criterion of the nuisances it used. At
+        # vertices every blend agrees, so the pair table serves the outcome side of any row.
+        phi_alpha = phi_function(an.inputs, blend)(weights[None])[0]
         chi_beta = an.Psi @ beta
         risk = pseudo_risk(an.settings.criterion, phi_alpha, chi_beta, phi_alpha @ beta, an.masks)
-        alpha = an.search_weights(alpha, base)
-        return EstimatorRow(name, kind, est, se, alpha, np.asarray(beta), risk, self.level)
+        return EstimatorRow(
+            name, kind, est, se, weights, np.asarray(beta), risk, self.level, blend=blend
+        )
+
 
 
 def combine_repeats(estimates, ses) -> tuple[float, float]:

@@ -7,20 +7,62 @@ of a result is one line.
 
 from __future__ import annotations
 
-import html
 from dataclasses import dataclass, field
+from datetime import UTC, datetime
 
 import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
 from stackdr.estimation._diagnostics import Diagnostics, fit_diagnostics
+from stackdr.estimation._numbers import DEFAULT_DIGITS, number_text
+from stackdr.estimation._summary import ResultSummary, interval_sentence, units_sentence
 
 CAUTION = (
     "A causal reading needs consistency, no unmeasured confounding and positivity; the tool "
     "cannot check the first two. The estimate supports, and does not replace, subject-matter, "
     "clinical or policy review; local regulations and licensed practice come first."
 )
+
+
+def utc_now() -> str:
+    """The current UTC time as ISO 8601 to the second, e.g. ``2026-01-31T12:00:00Z``."""
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+#: What each blend averages, in words, for tables and reports.
+BLEND_MEANINGS = {
+    "riesz": "a weighted average of the inverse-propensity weights, so the estimate is linear "
+    "in the weights",
+    "probability": "a weighted average of the propensities",
+    "logit": "a weighted average of the log-odds of the propensities",
+}
+#: Weights closer than this (largest absolute difference) count as the same weights.
+SAME_WEIGHTS = 1e-6
+#: The headline's words when the tie-break lands on the prediction-loss stacking weights.
+NOT_SEPARATED = (
+    "The data do not separate the target-aimed weights from the prediction-loss weights at "
+    "this noise level: within the tie-break tolerance the target-aimed weights are the "
+    "prediction-loss stacking weights."
+)
+
+
+def blend_note(main, other) -> str:
+    """Why a row (``other``, an :class:`EstimatorRow`) with another blend than the headline
+    row (``main``) differs from it."""
+    text = (
+        f"{other.name[:1].upper()}{other.name[1:]} uses the {other.blend} blend "
+        f"({BLEND_MEANINGS.get(other.blend, '')}); the target-aimed rows use the {main.blend} "
+        f"blend ({BLEND_MEANINGS.get(main.blend, '')})."
+    )
+    gap = max(np.abs(other.alpha - main.alpha).max(), np.abs(other.beta - main.beta).max())
+    if gap <= SAME_WEIGHTS:
+        text += (
+            f" Its weights equal the target-aimed ones: under the {main.blend} blend they give "
+            f"the target-aimed estimate ({number_text(main.estimate)}), so the two rows differ "
+            "only by blend."
+        )
+    return text + " Each row's pseudo-risk is computed for its own weights and blend."
 
 
 @dataclass
@@ -39,6 +81,7 @@ class EstimatorRow:
     high: float = float("nan")
     interval_method: str = "wald"
     bootstrap_se: float = float("nan")
+    blend: str = "riesz"
 
     def __post_init__(self) -> None:
         if np.isnan(self.low):
@@ -50,6 +93,17 @@ class EstimatorRow:
         z = norm.ppf(0.5 + self.level / 2)
         return self.estimate - z * self.se, self.estimate + z * self.se
 
+    @property
+    def se_method(self) -> str:
+        """Where :attr:`interval_se` comes from: "bootstrap" or "wald"."""
+        return "wald" if self.interval_method == "wald" else "bootstrap"
+
+    @property
+    def interval_se(self) -> float:
+        """The SE of the method the interval comes from: the bootstrap SE beside a bootstrap
+        interval, the influence-function (Wald) SE beside a Wald interval."""
+        return self.se if self.se_method == "wald" else self.bootstrap_se
+
 
 @dataclass(repr=False)
 class BlendResult:
@@ -59,7 +113,8 @@ class BlendResult:
     ----------
     estimate, se : float
         Target-aimed estimate and its influence-function standard error (Wald, ignores the
-        selection of weights; see ``interval`` for the bootstrap interval when computed).
+        selection of weights; see ``interval`` for the bootstrap interval when computed and
+        ``interval_se`` for the SE that matches it).
     alpha, beta : pandas.Series
         Chosen weights of the propensity and outcome libraries, indexed by learner name. With
         the ``stacked_propensity`` setting (riesz blend) the propensity side has one more entry,
@@ -71,6 +126,8 @@ class BlendResult:
     crossfit, analysis, data, target : the ingredients (out-of-fold predictions, pair tables,
         losses, validated data).
     bootstrap : inference.BootstrapResult or None
+    created_utc : str
+        When the result was made (UTC, ISO 8601 to the second), for provenance.
 
     See Also
     --------
@@ -92,6 +149,7 @@ class BlendResult:
     settings: dict
     timings: dict = field(default_factory=dict)
     bootstrap: object = None
+    created_utc: str = field(default_factory=utc_now)
 
     # ------------------------------------------------------------------ tables
     @property
@@ -102,6 +160,37 @@ class BlendResult:
     @property
     def interval_method(self) -> str:
         return self.estimators[0].interval_method
+
+    @property
+    def interval_se(self) -> float:
+        """SE of the method the headline interval comes from (bootstrap SE with a bootstrap
+        interval, the influence-function SE ``se`` with a Wald interval)."""
+        return self.estimators[0].interval_se
+
+    @property
+    def at_prediction_loss_weights(self) -> bool:
+        """Whether the tie-break landed on (within 1e-6 of) the prediction-loss stacking
+        weights on both sides: the data do not separate the two weightings."""
+        if not self.settings.get("tie_break", False):
+            return False
+        an = self.analysis
+        # With the stacked propensity column, prediction-loss stacking's propensity is that
+        # column's vertex (the same nuisance as its weights on the probability scale).
+        gap = max(
+            np.abs(self.alpha.to_numpy() - an.search_anchor(an.stack_alpha)).max(),
+            np.abs(self.beta.to_numpy() - an.stack_beta).max(),
+        )
+        return bool(gap <= SAME_WEIGHTS)
+
+    @property
+    def notes(self) -> list:
+        """Sentences a reader of the comparison needs: whether the data separate the
+        target-aimed from the prediction-loss weights, and why rows with another blend differ
+        from the headline."""
+        notes = [NOT_SEPARATED] if self.at_prediction_loss_weights else []
+        main = self.estimators[0]
+        notes += [blend_note(main, row) for row in self.estimators[1:] if row.blend != main.blend]
+        return notes
 
     @property
     def wald_interval(self) -> tuple[float, float]:
@@ -179,18 +268,24 @@ class BlendResult:
         )
 
     def comparison(self, include_pairs: bool = False) -> pd.DataFrame:
-        """One row per estimator: estimate, SE, interval, pseudo-risk, weights."""
+        """One row per estimator: blend, estimate, SE (``se``: of the method the interval comes
+        from, named in ``se_method``; ``wald_se`` and ``bootstrap_se`` both kept), interval,
+        pseudo-risk (for the row's own weights and blend), weights."""
         rows = []
         for r in self.estimators:
             rows.append(
                 {
                     "estimator": r.name,
                     "kind": r.kind,
+                    "blend": r.blend,
                     "estimate": r.estimate,
-                    "se": r.se,
+                    "se": r.interval_se,
+                    "se_method": r.se_method,
                     "low": r.low,
                     "high": r.high,
                     "interval": r.interval_method,
+                    "wald_se": r.se,
+                    "bootstrap_se": r.bootstrap_se,
                     "pseudo_risk": r.pseudo_risk,
                     "propensity_weights": _weights_text(self.propensity_names, r.alpha),
                     "outcome_weights": _weights_text(self.crossfit.outcome_names, r.beta),
@@ -205,11 +300,15 @@ class BlendResult:
                         {
                             "estimator": f"pair {pk} | {oj}",
                             "kind": "single pair",
+                            "blend": self.settings["blend"],
                             "estimate": Psi[k, j],
                             "se": se[k, j],
+                            "se_method": "wald",
                             "low": Psi[k, j] - z * se[k, j],
                             "high": Psi[k, j] + z * se[k, j],
                             "interval": "wald",
+                            "wald_se": se[k, j],
+                            "bootstrap_se": np.nan,
                             "pseudo_risk": np.nan,
                             "propensity_weights": pk,
                             "outcome_weights": oj,
@@ -234,16 +333,29 @@ class BlendResult:
             blend=self.settings["blend"],
         )
 
-    def summary(self) -> ResultSummary:
-        """The comparison table with the fit's settings, chosen weights, sensitivities and the
-        standing caution; ``print(result.summary())`` shows it as aligned text.
+    def summary(
+        self, digits: int = DEFAULT_DIGITS, outcome_label: str | None = None
+    ) -> ResultSummary:
+        """The comparison table with the fit's settings, chosen weights, sensitivities, the
+        notes the rows need and the standing caution; ``print(result.summary())`` shows it as
+        aligned text.
+
+        Parameters
+        ----------
+        digits : int
+            Significant digits of the largest value of each numeric column.
+        outcome_label : str, optional
+            The outcome with its unit in parentheses, e.g. ``"change in systolic pressure
+            (mmHg)"``; the unit is named in the summary.
 
         Returns
         -------
         ResultSummary
         """
+        boot = self.bootstrap
         return ResultSummary(
-            title=f"stackdr: {self.target.description}",
+            title=f"stackdr: {self.target.description}"
+            + (f", outcome: {outcome_label}" if outcome_label else ""),
             details=(
                 f"n = {self.data.n}, folds = {self.settings['folds']}, blend = "
                 f"{self.settings['blend']}, criterion = {self.settings['criterion']}, "
@@ -253,10 +365,22 @@ class BlendResult:
             level=self.level,
             weights={"propensity": self.alpha.copy(), "outcome": self.beta.copy()},
             sensitivities=(
-                f"Sensitivities at the chosen weights: outcome direction {self.search.s_out:.3g}, "
-                f"weight direction {self.search.s_ps:.3g}; tie-break moved weights: "
+                "Sensitivities at the chosen weights: outcome direction "
+                f"{number_text(self.search.s_out, digits)}, weight direction "
+                f"{number_text(self.search.s_ps, digits)}; tie-break moved weights: "
                 f"{'yes' if self.tie_break_active else 'no'}"
             ),
+            caution=CAUTION,
+            notes=tuple(self.notes),
+            intervals=interval_sentence(
+                self.level,
+                self.interval_method,
+                None if boot is None else boot.replicates,
+                None if boot is None else boot.kind,
+                any(row.se_method == "wald" for row in self.estimators),
+            ),
+            units=units_sentence(self.target.name, outcome_label),
+            digits=digits,
         )
 
     def __str__(self) -> str:
@@ -266,7 +390,8 @@ class BlendResult:
         low, high = self.interval
         cf = self.crossfit
         return (
-            f"BlendResult({self.target.name}: estimate {self.estimate:.4g}, SE {self.se:.3g}, "
+            f"BlendResult({self.target.name}: estimate {self.estimate:.4g}, "
+            f"{self.estimators[0].se_method} SE {self.interval_se:.3g}, "
             f"{100 * self.level:g}% {self.interval_method} interval [{low:.4g}, {high:.4g}], "
             f"n = {self.data.n}, learners {len(cf.propensity_names)} propensity + "
             f"{len(cf.outcome_names)} outcome)"
@@ -287,111 +412,3 @@ class BlendResult:
 
 def _weights_text(names, weights) -> str:
     return ", ".join(f"{n} {w:.2f}" for n, w in zip(names, weights) if w > 5e-3)
-
-
-@dataclass(frozen=True, eq=False)
-class ResultSummary:
-    """A fit's summary: the comparison table with its context, as text, HTML or a DataFrame.
-
-    ``str(summary)`` (and so ``print``) gives the aligned text; notebooks show the HTML.
-
-    Attributes
-    ----------
-    title : str
-        What was estimated.
-    details : str
-        Rows and the main settings, one line.
-    table : pandas.DataFrame
-        One row per estimator (:meth:`BlendResult.comparison`).
-    level : float
-        Confidence level of the intervals.
-    weights : dict of str to pandas.Series
-        Target-aimed weights of the ``"propensity"`` and ``"outcome"`` libraries.
-    sensitivities : str
-        Sensitivities at the chosen weights and whether the tie-break moved them, one line.
-    caution : str
-        The standing caution on a causal reading.
-    """
-
-    title: str
-    details: str
-    table: pd.DataFrame
-    level: float
-    weights: dict
-    sensitivities: str
-    caution: str = CAUTION
-
-    def as_frame(self) -> pd.DataFrame:
-        """The comparison table (a copy).
-
-        Returns
-        -------
-        pandas.DataFrame
-        """
-        return self.table.copy()
-
-    def as_text(self) -> str:
-        """The summary as aligned plain text.
-
-        Returns
-        -------
-        str
-        """
-        pct = f"{100 * self.level:g}%"
-        lines = [
-            self.title,
-            self.details,
-            "",
-            f"{'estimator':<30}{'estimate':>12}{'SE':>10}{pct + ' low':>12}{pct + ' high':>12}"
-            f"{'interval':>12}{'pseudo-risk':>13}",
-        ]
-        for _, r in self.table.iterrows():
-            lines.append(
-                f"{r['estimator']:<30}{r['estimate']:>12.4g}{r['se']:>10.3g}{r['low']:>12.4g}"
-                f"{r['high']:>12.4g}{r['interval']:>12}{r['pseudo_risk']:>13.3g}"
-            )
-        lines += ["", "Weights (target-aimed):"]
-        for side, series in self.weights.items():
-            lines.append(f"  {side:<11}" + "  ".join(f"{k} {v:.3f}" for k, v in series.items()))
-        lines += [self.sensitivities, "", "Caution: " + self.caution]
-        return "\n".join(lines)
-
-    def as_html(self) -> str:
-        """The summary as an HTML fragment (all text escaped; no scripts or styles).
-
-        Returns
-        -------
-        str
-        """
-        pct = f"{100 * self.level:g}%"
-        shown = pd.DataFrame(
-            {
-                "estimator": self.table["estimator"],
-                "estimate": [f"{v:.4g}" for v in self.table["estimate"]],
-                "SE": [f"{v:.3g}" for v in self.table["se"]],
-                f"{pct} low": [f"{v:.4g}" for v in self.table["low"]],
-                f"{pct} high": [f"{v:.4g}" for v in self.table["high"]],
-                "interval": self.table["interval"],
-                "pseudo-risk": [f"{v:.3g}" for v in self.table["pseudo_risk"]],
-            }
-        )
-        weights = "; ".join(
-            f"{side}: " + ", ".join(f"{k} {v:.3f}" for k, v in series.items())
-            for side, series in self.weights.items()
-        )
-        e = html.escape
-        return (
-            f"<div><p><strong>{e(self.title)}</strong><br>{e(self.details)}</p>"
-            f"{shown.to_html(index=False, escape=True)}"
-            f"<p>Weights (target-aimed): {e(weights)}</p><p>{e(self.sensitivities)}</p>"
-            f"<p>Caution: {e(self.caution)}</p></div>"
-        )
-
-    def __str__(self) -> str:
-        return self.as_text()
-
-    def __repr__(self) -> str:
-        return self.as_text()
-
-    def _repr_html_(self) -> str:
-        return self.as_html()

@@ -23,6 +23,7 @@ from typing import Any
 
 from stackdr.core import BLENDS, TARGET_NAMES
 from stackdr.errors import InputError
+from stackdr.estimation._numbers import DEFAULT_DIGITS
 from stackdr.search import CRITERIA
 
 DIRECTIONS = ("all", "credible")
@@ -146,6 +147,25 @@ _TABLE = (
     ),
     Setting("out", None, "text", "output folder", estimator=False, path=True, metavar="DIR"),
     Setting("overwrite", False, "switch", "replace an existing results.json", estimator=False),
+    Setting(
+        "outcome_label",
+        None,
+        "text",
+        "outcome with its unit for axes and table headers, e.g. 'change in systolic pressure "
+        "(mmHg)'",
+        estimator=False,
+        metavar="TEXT",
+    ),
+    Setting(
+        "digits",
+        DEFAULT_DIGITS,
+        "whole",
+        "significant digits in tables",
+        low=1,
+        high=15,
+        estimator=False,
+        metavar="D",
+    ),
     Setting("target", "ate", "text", "target parameter", choices=TARGET_NAMES, study=False),
     Setting(
         "propensity_learners",

@@ -15,6 +15,13 @@ from stackdr.io._export import (
     blended_models,
     blended_nuisances,
 )
+from stackdr.io._provenance import (
+    RECORDED_PACKAGES,
+    input_record,
+    provenance,
+    relative_path,
+    versions,
+)
 from stackdr.io._results_json import (
     atomic_write,
     plain,
@@ -25,6 +32,7 @@ from stackdr.io._results_json import (
 from stackdr.io._results_schema import SCHEMA, field_reference, results_schema, validate_results
 
 __all__ = [
+    "RECORDED_PACKAGES",
     "ESTIMATOR_SETTINGS",
     "SCHEMA",
     "SETTINGS",
@@ -36,12 +44,16 @@ __all__ = [
     "check_setting",
     "estimator_kwargs",
     "field_reference",
+    "input_record",
     "load_config",
     "plain",
+    "provenance",
     "read_results_json",
+    "relative_path",
     "resolve_settings",
     "result_to_dict",
     "results_schema",
     "validate_results",
+    "versions",
     "write_results_json",
 ]

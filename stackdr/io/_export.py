@@ -62,13 +62,14 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
 
         - ``row``, ``repeat``, ``fold``: position in the data, fold assignment, held-out fold.
         - ``treatment``, ``outcome``: the validated values (outcome NaN where the target does
-          not use it, e.g. control rows for ``mean1``).
-        - ``propensity`` and ``propensity_scale``: the blended out-of-fold propensity
-          E[A | X]. For the ``probability`` and ``logit`` blends it is exactly the blended
-          propensity used; for the ``riesz`` blend, which averages the weight-side values rather
-          than propensities, it is the probability-scale average with the same weights (shown
-          for overlap checks; the estimate used the ``weight_*`` columns). A weight on the
-          stacked propensity (``"prediction-loss stack"``) counts its probabilities.
+          not use it, e.g. control rows for ``mean1``); a 0/1 treatment as whole numbers.
+        - ``propensity``: the blended out-of-fold propensity E[A | X]. For the
+          ``probability`` and ``logit`` blends it is exactly the blended propensity used; for
+          the ``riesz`` blend, which averages the weight-side values rather than propensities,
+          it is the probability-scale average with the same weights (shown for overlap checks;
+          the estimate used the ``weight_*`` columns). A weight on the stacked propensity
+          (``"prediction-loss stack"``) counts its probabilities. Which one is said once, in
+          ``table.attrs["propensity_scale"]`` (and in ``run`` of ``results.json``).
         - ``mu1``, ``mu0`` or ``m``: outcome regressions at the outcome weights, one column per
           outcome head the target uses.
         - ``weight_<head>``: the weight-side value p_c of each component (for example 1/pi for
@@ -91,6 +92,8 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
         raise InputError(f"repeat must be between 0 and {cf.repeats - 1}, got {repeat!r}")
     labels = _component_labels(target)
     needed = target.outcome_needed(data.A)
+    binary = bool(np.isin(data.A, (0.0, 1.0)).all())
+    treatment = data.A.astype(int) if binary else data.A
     frames = []
     for r in repeats:
         inp = result.analysis.inputs[r]
@@ -108,10 +111,9 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
             "row": np.arange(data.n),
             "repeat": np.full(data.n, r),
             "fold": cf.fold_labels[r],
-            "treatment": data.A,
+            "treatment": treatment,
             "outcome": np.where(needed, data.Y, np.nan),
             "propensity": propensity,
-            "propensity_scale": scale,
         }
         for head in target.outcome_heads:
             columns[head] = cf.outcome[head][r] @ beta
@@ -120,7 +122,9 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
             columns[f"weight_{label}"] = p[:, 0]
         columns["contribution"] = row_contributions(inp, alpha, beta, blend)
         frames.append(pd.DataFrame(columns))
-    return pd.concat(frames, ignore_index=True)
+    table = pd.concat(frames, ignore_index=True)
+    table.attrs["propensity_scale"] = scale
+    return table
 
 
 def _check_weights(estimators, weights, owner: str) -> dict[str, float]:

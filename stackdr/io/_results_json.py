@@ -21,7 +21,8 @@ import numpy as np
 
 from stackdr._version import __version__
 from stackdr.errors import InputError
-from stackdr.estimation import CAUTION, BlendResult, phi_function
+from stackdr.estimation import CAUTION, DEFAULT_DIGITS, BlendResult, phi_function
+from stackdr.io._provenance import provenance as make_provenance
 from stackdr.io._results_schema import SCHEMA, validate_results
 
 # --------------------------------------------------------------------------------- conversion
@@ -110,6 +111,7 @@ def _tie_break(result: BlendResult) -> dict:
         "enabled": bool(result.settings.get("tie_break", False)),
         "scale": plain(result.settings.get("tie_break_scale")),
         "moved": result.tie_break_active,
+        "at_prediction_loss_weights": result.at_prediction_loss_weights,
         "steps": steps,
     }
 
@@ -236,13 +238,26 @@ def _cautions(result: BlendResult) -> list:
     return cautions
 
 
-def result_to_dict(result: BlendResult) -> dict:
+def result_to_dict(
+    result: BlendResult,
+    *,
+    provenance: dict | None = None,
+    outcome_label: str | None = None,
+    digits: int = DEFAULT_DIGITS,
+) -> dict:
     """Everything needed to report a fit, as JSON-ready nested dicts (schema ``SCHEMA``).
 
     Parameters
     ----------
     result : BlendResult
         A fitted result from :meth:`stackdr.BlendEstimator.fit`.
+    provenance : dict, optional
+        From :func:`stackdr.io.provenance` (default: the result's time and the installed
+        versions, no input file or command line).
+    outcome_label : str, optional
+        The outcome with its unit in parentheses, for axes and table headers of the report.
+    digits : int
+        Significant digits of the report's tables.
 
     Returns
     -------
@@ -259,11 +274,14 @@ def result_to_dict(result: BlendResult) -> dict:
             {
                 "name": row.name,
                 "kind": row.kind,
+                "blend": row.blend,
                 "estimate": plain(row.estimate),
-                "se": plain(row.se),
+                "se": plain(row.interval_se),
+                "se_method": row.se_method,
                 "low": plain(row.low),
                 "high": plain(row.high),
                 "interval_method": row.interval_method,
+                "wald_se": plain(row.se),
                 "wald_low": plain(wald_low),
                 "wald_high": plain(wald_high),
                 "bootstrap_se": plain(row.bootstrap_se),
@@ -280,12 +298,14 @@ def result_to_dict(result: BlendResult) -> dict:
         "target": {"name": result.target.name, "description": result.target.description},
         "n": int(data.n),
         "estimate": plain(result.estimate),
-        "se": plain(result.se),
+        "se": plain(result.interval_se),
+        "wald_se": plain(result.se),
         "interval": {
             "low": plain(low),
             "high": plain(high),
             "level": plain(result.level),
             "method": result.interval_method,
+            "se_method": result.estimators[0].se_method,
         },
         "weights": {
             "propensity": _named(pnames, result.alpha.to_numpy()),
@@ -312,7 +332,10 @@ def result_to_dict(result: BlendResult) -> dict:
             "outcome": data.outcome_name,
             "covariates": [str(c) for c in data.covariate_names],
         },
+        "notes": list(result.notes),
         "cautions": _cautions(result),
+        "presentation": {"outcome_label": outcome_label, "digits": int(digits)},
+        "provenance": provenance if provenance is not None else make_provenance(result.created_utc),
     }
 
 

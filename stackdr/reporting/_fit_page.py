@@ -1,10 +1,11 @@
 """A self-contained HTML report built only from a results dict (see :mod:`stackdr.io`).
 
 Page shell, style, escaping, tables and inline images come from :mod:`._html`: figures are
-embedded as base64 PNG data URIs (and also written to ``figures/``); no network, no scripts, no
-external style sheets; every piece of user text (column and learner names, titles, notes) is
-HTML-escaped. The same results dict always gives the same bytes, so a report rebuilt
-from ``results.json`` equals the original.
+embedded as base64 PNG data URIs (and also written to ``figures/`` as PNG, SVG and PDF, which
+the page links for full size); no network, no scripts, no external style sheets; every piece of
+user text (column and learner names, titles, notes) is HTML-escaped. The comparison and the
+pair table are also written to ``tables/`` as LaTeX and Markdown. The same results dict always
+gives the same bytes, so a report rebuilt from ``results.json`` equals the original.
 """
 
 from __future__ import annotations
@@ -12,9 +13,12 @@ from __future__ import annotations
 import json
 import pathlib
 
+from stackdr.estimation import BLEND_MEANINGS, column_text, number_text, units_sentence
 from stackdr.io import atomic_write, plain, validate_results
 from stackdr.reporting._figures import FIGURES, landscape_kind, render_figures
-from stackdr.reporting._html import escape, figure, number_text, page, paragraph, table
+from stackdr.reporting._html import escape, figure, page, paragraph, table
+from stackdr.reporting._style import FORMATS
+from stackdr.reporting._tables import fit_tables, latex, markdown
 from stackdr.search import SMOOTHED, STACKED_PROPENSITY
 
 SECTIONS = (
@@ -37,7 +41,37 @@ def _json_text(value) -> str:
 
 
 def _figure(figures: dict, name: str, caption: str) -> str:
-    return figure(figures[name], caption, ident=f"figure-{name}")
+    files = {fmt.upper(): f"figures/{name}.{fmt}" for fmt in FORMATS}
+    return figure(figures[name]["png"], caption, ident=f"figure-{name}", files=files)
+
+
+def _digits(r: dict) -> int:
+    return r["presentation"]["digits"]
+
+
+def _provenance(r: dict) -> str:
+    prov = r["provenance"]
+    source = prov["input"]
+    rows = [["created (UTC)", prov["created_utc"]]]
+    if source is not None:
+        rows += [
+            ["data file", f"{source['file']} ({source['path']} from the report folder)"],
+            ["SHA-256 of the data file", source["sha256"]],
+            [
+                "data file size",
+                f"{source['rows']} rows \u00d7 {source['columns']} columns, "
+                f"{source['bytes']} bytes",
+            ],
+        ]
+    else:
+        rows.append(["data", "passed in Python (no file)"])
+    rows.append(["command line", prov["command_line"] or "none (a fit made in Python)"])
+    rows.append(["platform", prov["platform"]])
+    rows += [
+        [f"version of {name}", version or "not installed"]
+        for name, version in prov["versions"].items()
+    ]
+    return "<h3>Provenance</h3>\n" + table(["item", "value"], rows)
 
 
 def interval_description(results: dict) -> str:
@@ -80,6 +114,7 @@ def _job(r: dict) -> str:
             ["seed", r["seed"]],
         ],
     )
+    out += _provenance(r)
     out += "<h3>Settings</h3>\n" + table(
         ["setting", "value"], [[k, _json_text(v)] for k, v in r["settings"].items()]
     )
@@ -88,19 +123,28 @@ def _job(r: dict) -> str:
         "Each learner's loss on rows it was not trained on (lower is better) and its weight in "
         "prediction-loss stacking."
     )
+    learners = diag["learners"]
+    # Each side's losses in one format: a log-loss and a squared error share no scale.
+    losses = {}
+    for side in {x["side"] for x in learners}:
+        rows = [i for i, x in enumerate(learners) if x["side"] == side]
+        texts = column_text([learners[i]["loss"] for i in rows], _digits(r))
+        losses.update(zip(rows, texts))
     out += table(
         ["side", "learner", "loss", "metric", "stacking weight", "fit seconds"],
         [
             [
                 x["side"],
                 x["learner"],
-                x["loss"],
+                losses[i],
                 x["metric"],
                 x["stacking_weight"],
                 x["fit_seconds"],
             ]
-            for x in diag["learners"]
+            for i, x in enumerate(learners)
         ],
+        align_right={"loss"},
+        digits=_digits(r),
     )
     if diag["failed_learners"]:
         out += "<h3>Learners that failed</h3>\n" + table(
@@ -117,44 +161,58 @@ def _job(r: dict) -> str:
     return out
 
 
+def _se_words(method: str) -> str:
+    return "bootstrap SE" if method == "bootstrap" else "influence-function (Wald) SE"
+
+
 def _headline(r: dict) -> str:
     iv = r["interval"]
     sens = r["sensitivities"]
     main = r["estimators"][0]
+    digits = _digits(r)
     out = paragraph(
         "The target-aimed estimate: learner weights chosen so that the estimate moves as little "
         "as possible when either learner library is swapped, then the doubly robust estimate at "
         "those weights."
     )
-    estimate = escape(number_text(r["estimate"]))
+    estimate, low, high = column_text([r["estimate"], iv["low"], iv["high"]], digits)
+    outcome = r["presentation"]["outcome_label"]
     out += (
-        f'<p class="headline">{escape(r["target"]["name"])} = <strong>{estimate}'
-        f"</strong> (SE {escape(number_text(r['se'], 3))}); {100 * iv['level']:g}% interval "
-        f"{escape(number_text(iv['low']))} to "
-        f"{escape(number_text(iv['high']))}</p>\n"
+        f'<p class="headline">{escape(r["target"]["name"])} = <strong>{escape(estimate)}'
+        f"</strong> ({escape(_se_words(iv['se_method']))} {escape(number_text(r['se'], digits))}"
+        f"); {100 * iv['level']:g}% interval {escape(low)} to {escape(high)}"
+        + (f"<br><small>outcome: {escape(outcome)}</small>" if outcome else "")
+        + "</p>\n"
     )
     out += paragraph(f"Interval: {interval_description(r)}.")
+    out += paragraph(units_sentence(r["target"]["name"], outcome))
     if iv["method"] != "wald":
+        wald_low, wald_high = column_text([main["wald_low"], main["wald_high"]], digits)
         out += paragraph(
-            f"For comparison, the Wald interval is {number_text(main['wald_low'])} to "
-            f"{number_text(main['wald_high'])} and the bootstrap standard error is "
-            f"{number_text(main['bootstrap_se'], 3)}."
+            f"For comparison, the Wald interval is {wald_low} to {wald_high}, with the "
+            f"influence-function SE {number_text(r['wald_se'], digits)}; it ignores the choice "
+            "of weights."
         )
+    for note in r["notes"][:1] if r["tie_break"]["at_prediction_loss_weights"] else []:
+        out += paragraph(note, "note")
     out += paragraph(
         "Sensitivities at the chosen weights: outcome direction "
-        f"{number_text(sens['outcome_direction'], 3)}, weight direction "
-        f"{number_text(sens['weight_direction'], 3)}; pseudo-risk "
-        f"{number_text(r['pseudo_risk'], 3)}."
+        f"{number_text(sens['outcome_direction'], digits)}, weight direction "
+        f"{number_text(sens['weight_direction'], digits)}; pseudo-risk "
+        f"{number_text(r['pseudo_risk'], digits)}."
     )
     return out
 
 
 def _estimators(r: dict, figs: dict) -> str:
+    digits = _digits(r)
     out = paragraph(
         "Every estimator computed on the same folds and predictions. Coloured bars are the "
         "reported intervals (bootstrap when run); the grey bars below them are Wald intervals, "
-        "which ignore the choice of weights. Pseudo-risk is the criterion the target-aimed "
-        "weights minimise (lower means less sensitive to swapping learners)."
+        "which ignore the choice of weights; the dotted line marks the target-aimed estimate. "
+        "Each row's SE is the one of the method its interval comes from (SE from). Pseudo-risk "
+        "is the criterion the target-aimed weights minimise (lower means less sensitive to "
+        "swapping learners), computed for each row's own weights and blend."
     )
     out += _figure(figs, "estimators", "Estimators with their intervals")
     if any(x["name"] == SMOOTHED for x in r["estimators"]):
@@ -164,36 +222,76 @@ def _estimators(r: dict, figs: dict) -> str:
             "pair standard error). The pair weights are the products of the propensity and "
             "outcome weights shown for it, so it equals the riesz blend at those weights."
         )
-    out += table(
+    rows = r["estimators"]
+    n = len(rows)
+    keys = ("estimate", "low", "high", "wald_low", "wald_high")
+    ends = column_text([x[k] for k in keys for x in rows], digits)
+    columns = [ends[i * n : (i + 1) * n] for i in range(len(keys))]
+    ses = column_text([x["se"] for x in rows] + [x["wald_se"] for x in rows], digits)
+    unit = units_sentence(r["target"]["name"], r["presentation"]["outcome_label"])
+    headers = [
+        "estimator",
+        "kind",
+        "blend",
+        "estimate",
+        "SE",
+        "SE from",
+        "low",
+        "high",
+        "interval",
+        "Wald SE",
+        "Wald low",
+        "Wald high",
+        "pseudo-risk",
+    ]
+    body = [
         [
-            "estimator",
-            "kind",
-            "estimate",
-            "SE",
-            "low",
-            "high",
-            "interval",
-            "Wald low",
-            "Wald high",
-            "pseudo-risk",
-        ],
-        [
-            [
-                x["name"],
-                x["kind"],
-                x["estimate"],
-                x["se"],
-                x["low"],
-                x["high"],
-                x["interval_method"],
-                x["wald_low"],
-                x["wald_high"],
-                x["pseudo_risk"],
-            ]
-            for x in r["estimators"]
-        ],
+            x["name"],
+            x["kind"],
+            x["blend"],
+            columns[0][i],
+            ses[i],
+            "Wald" if x["se_method"] == "wald" else "bootstrap",
+            columns[1][i],
+            columns[2][i],
+            x["interval_method"],
+            ses[n + i],
+            columns[3][i],
+            columns[4][i],
+            x["pseudo_risk"],
+        ]
+        for i, x in enumerate(rows)
+    ]
+    numeric = {"estimate", "SE", "low", "high", "Wald SE", "Wald low", "Wald high"}
+    out += table(headers, body, align_right=numeric, digits=digits)
+    out += paragraph(unit)
+    blends = sorted({x["blend"] for x in rows})
+    out += paragraph(
+        "Blend: how a row combines its propensity learners: "
+        + "; ".join(f"{b}, {BLEND_MEANINGS.get(b, b)}" for b in blends)
+        + "."
+    )
+    for note in r["notes"]:
+        out += paragraph(note, "note")
+    out += paragraph(
+        "The comparison and the pair table are also written as LaTeX (booktabs) and Markdown "
+        "in tables/ beside this report (comparison.tex, comparison.md, pair_table.tex, "
+        "pair_table.md), with units and a caption."
     )
     return out
+
+
+def _tie_break_outcome(tb: dict) -> str:
+    moved = [s["side"] for s in tb["steps"] if s["moved"]]
+    if not moved:
+        return "It did not move the weights (the pure minimiser was already the closest)."
+    text = f"It moved the {' and '.join(moved)} weights"
+    if tb["at_prediction_loss_weights"]:
+        return text + (
+            " all the way onto the prediction-loss stacking weights: the data do not separate "
+            "the two weightings at this noise level."
+        )
+    return text + " part of the way towards the prediction-loss stacking weights."
 
 
 def _weights(r: dict, figs: dict) -> str:
@@ -206,9 +304,9 @@ def _weights(r: dict, figs: dict) -> str:
     out += _figure(figs, "weights", "Weights of the propensity and outcome learners")
     if tb["enabled"]:
         out += paragraph(
-            f"Tie-break: among weights whose sensitivity is within {number_text(tb['scale'], 3)} "
+            f"Tie-break: among weights whose sensitivity is within {tb['scale']:g} "
             "standard errors of the smallest, the ones closest to the prediction-loss stacking "
-            f"weights are taken. It {'moved' if tb['moved'] else 'did not move'} the weights."
+            f"weights are taken. {_tie_break_outcome(tb)}"
         )
         out += table(
             ["step", "side", "tolerance", "bound", "moved"],
@@ -247,11 +345,17 @@ def _pairs(r: dict, figs: dict) -> str:
             "prediction-loss stacking."
         )
     out += _figure(figs, "pair_table", "Pair table as a heat map")
+    width = len(pairs["columns"])
+    digits = _digits(r)
+    values = column_text([v for row in pairs["values"] for v in row], digits)
+    ses = column_text([v for row in pairs["standard_errors"] for v in row], digits)
     rows = [
-        [name] + [f"{number_text(v)} ({number_text(s, 2)})" for v, s in zip(vals, ses)]
-        for name, vals, ses in zip(pairs["rows"], pairs["values"], pairs["standard_errors"])
+        [name] + [f"{values[k * width + j]} ({ses[k * width + j]})" for j in range(width)]
+        for k, name in enumerate(pairs["rows"])
     ]
-    return out + table(["propensity \\ outcome"] + pairs["columns"], rows)
+    return out + table(
+        ["propensity \\ outcome"] + pairs["columns"], rows, align_right=pairs["columns"]
+    )
 
 
 def _ranges(values: list, names: list, keep: list) -> tuple:
@@ -409,8 +513,8 @@ def _overlap(r: dict, figs: dict) -> str:
         ],
     )
     out += paragraph(
-        f"Out-of-fold propensities clipped to [{number_text(diag['clip'])}, "
-        f"{number_text(1 - diag['clip'])}], per learner:"
+        f"Out-of-fold propensities clipped to [{diag['clip']:g}, {1 - diag['clip']:g}], per "
+        "learner:"
     )
     out += table(
         ["propensity learner", "clipped low", "clipped high"],
@@ -435,7 +539,8 @@ def _cautions(r: dict) -> str:
 
 
 def report_html(results: dict, figures: dict, *, title: str | None = None) -> str:
-    """The report as an HTML string (figures: ``{name: png bytes}`` from render_figures)."""
+    """The report as an HTML string (figures: ``{name: {"png": bytes, ...}}`` from
+    render_figures)."""
     r = results
     title = title if title is not None else f"stackdr report: {r['target']['description']}"
     bodies = {
@@ -459,8 +564,14 @@ def report_html(results: dict, figures: dict, *, title: str | None = None) -> st
     return page(title, f"<nav><ol>{nav}</ol></nav>\n{sections}")
 
 
+#: Table files written beside the report, by format.
+TABLE_FORMATS = {"tex": latex, "md": markdown}
+
+
 def write_report(results: dict, out_dir, *, title: str | None = None) -> pathlib.Path:
-    """Write ``out_dir/report.html`` and every figure as ``out_dir/figures/<name>.png``.
+    """Write ``out_dir/report.html``, every figure as ``out_dir/figures/<name>.png``, ``.svg``
+    and ``.pdf``, and the comparison and pair tables as ``out_dir/tables/<name>.tex`` and
+    ``.md``.
 
     Built only from the results dict, so a report rebuilt from the saved ``results.json`` is
     byte-identical to the original. Existing report files in ``out_dir`` are replaced; figure
@@ -470,7 +581,7 @@ def write_report(results: dict, out_dir, *, title: str | None = None) -> pathlib
     ----------
     results : dict
         From :func:`stackdr.io.result_to_dict` or :func:`stackdr.io.read_results_json`;
-        validated here.
+        validated here. Its ``presentation`` block sets the outcome label and the digits.
     out_dir : str or path-like
         Folder to write into (created when missing).
     title : str, optional
@@ -487,10 +598,15 @@ def write_report(results: dict, out_dir, *, title: str | None = None) -> pathlib
     figures = render_figures(results)
     folder = out_dir / "figures"
     for name in FIGURES:
-        path = folder / f"{name}.png"
-        if name in figures:
-            atomic_write(path, figures[name], overwrite=True)
-        else:
-            path.unlink(missing_ok=True)
+        for fmt in FORMATS:
+            path = folder / f"{name}.{fmt}"
+            if name in figures:
+                atomic_write(path, figures[name][fmt], overwrite=True)
+            else:
+                path.unlink(missing_ok=True)
+    for paper_table in fit_tables(results):
+        for suffix, render in TABLE_FORMATS.items():
+            path = out_dir / "tables" / f"{paper_table.name}.{suffix}"
+            atomic_write(path, render(paper_table).encode("utf-8"), overwrite=True)
     page = report_html(results, figures, title=title)
     return atomic_write(out_dir / "report.html", page.encode("utf-8"), overwrite=True)

@@ -16,7 +16,9 @@ import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
 
-from stackdr.reporting._figures import (
+from stackdr.estimation import DEFAULT_DIGITS, LINE_WIDTH
+from stackdr.reporting._html import escape, figure, page, paragraph, table
+from stackdr.reporting._style import (
     MAIN_COLOUR,
     OTHER_COLOUR,
     STACK_COLOUR,
@@ -24,7 +26,7 @@ from stackdr.reporting._figures import (
     label,
     render_png,
 )
-from stackdr.reporting._html import escape, figure, page, paragraph, table
+from stackdr.reporting._tables import PaperTable, with_mcse_column
 from stackdr.search import ESTIMATOR_ORDER
 from stackdr.studies import read_results, read_study_record, summarise_study
 
@@ -33,7 +35,8 @@ MEASURES = (
     ("bias", "bias_mcse", "bias"),
     ("sd", "sd_mcse", "SD"),
     ("rmse", "rmse_mcse", "RMSE"),
-    ("mae", "mae_mcse", "MAE (median)"),
+    ("mae", "mae_mcse", "median absolute error"),
+    ("mean_abs_error", "mean_abs_error_mcse", "mean absolute error"),
     ("coverage", "coverage_mcse", "coverage"),
     ("width", "width_mcse", "mean width"),
 )
@@ -57,23 +60,69 @@ def with_mcse(value: float, mcse: float, digits: int = 4) -> str:
     return f"{_number(value, digits)} ({_number(mcse, 2)})"
 
 
-def display_table(summary: pd.DataFrame) -> pd.DataFrame:
+def display_table(summary: pd.DataFrame, digits: int = DEFAULT_DIGITS) -> pd.DataFrame:
     """The summary as strings: one row per design, n and estimator; each measure printed as
-    ``value (Monte Carlo SE)``."""
-    rows = []
-    for _, r in summary.iterrows():
-        row = {
-            "design": r["design"],
-            "n": str(int(r["n"])),
-            "estimator": r["estimator"],
-            "reps": str(int(r["reps"])),
-        }
+    ``value (Monte Carlo SE)``, one format per measure within each design and n."""
+    parts = []
+    for _, group in summary.groupby(["design", "n"], sort=False):
+        part = pd.DataFrame(
+            {
+                "design": group["design"],
+                "n": group["n"].astype(int).astype(str),
+                "estimator": group["estimator"],
+                "reps": group["reps"].astype(int).astype(str),
+            }
+        )
         for value, mcse, header in MEASURES:
-            row[header] = with_mcse(r[value], r[mcse])
-        rows.append(row)
-    return pd.DataFrame(
-        rows, columns=["design", "n", "estimator", "reps"] + [m[2] for m in MEASURES]
+            part[header] = with_mcse_column(list(group[value]), list(group[mcse]), digits)
+        parts.append(part)
+    columns = ["design", "n", "estimator", "reps"] + [m[2] for m in MEASURES]
+    if not parts:
+        return pd.DataFrame(columns=columns)
+    return pd.concat(parts, ignore_index=True)[columns]
+
+
+#: Below this many replicates a study summary's Monte Carlo SEs are too rough to lean on.
+FEW_REPLICATES = 20
+
+
+def few_replicates_note(summary: pd.DataFrame) -> str | None:
+    """A warning when any cell of the summary rests on fewer than 20 replicates."""
+    if summary.empty or summary["reps"].min() >= FEW_REPLICATES:
+        return None
+    return (
+        f"the summary rests on as few as {int(summary['reps'].min())} replicates per cell "
+        f"(fewer than {FEW_REPLICATES}); its Monte Carlo SEs are rough and a coverage of 1.00 "
+        "(0.00) only means every interval covered"
     )
+
+
+def study_tables(summary: pd.DataFrame, level: float, digits: int = DEFAULT_DIGITS) -> list:
+    """One paper table per design and n: every measure with its Monte Carlo SE, and a caption
+    with the design, truth, n, replicates and confidence level."""
+    tables = []
+    shown = display_table(summary, digits)
+    for (design, n), group in shown.groupby(["design", "n"], sort=False):
+        rows = summary[(summary["design"] == design) & (summary["n"] == int(n))]
+        reps = sorted(set(rows["reps"].astype(int)))
+        reps_text = str(reps[0]) if len(reps) == 1 else f"{reps[0]} to {reps[-1]}"
+        caption = (
+            f"Monte Carlo study: design {design} (target {rows['target'].iloc[0]}, truth "
+            f"{rows['truth'].iloc[0]:.6g}), n = {n}, {reps_text} replicates per estimator. "
+            f"Coverage of {100 * level:g}% intervals; errors are estimate minus truth, in outcome "
+            "units. Monte Carlo standard errors in parentheses."
+        )
+        body = group.drop(columns=["design", "n"])
+        tables.append(
+            PaperTable(
+                f"study_{design}_n{n}",
+                caption,
+                list(body.columns),
+                body.values.tolist(),
+                [False] + [True] * (body.shape[1] - 1),
+            )
+        )
+    return tables
 
 
 def text_table(frame: pd.DataFrame) -> str:
@@ -100,12 +149,27 @@ def markdown_table(frame: pd.DataFrame) -> str:
     return "\n".join([head, rule, *body])
 
 
-def summary_text(summary: pd.DataFrame) -> str:
+def _narrow_tables(frame: pd.DataFrame) -> str:
+    """Aligned text tables within 100 characters a line: the measures split over as many
+    tables as needed, each starting with the estimator and replicate columns."""
+    keys, measures = list(frame.columns[:2]), list(frame.columns[2:])
+    parts, current = [], []
+    for column in measures:
+        trial = text_table(frame[keys + current + [column]])
+        if current and max(map(len, trial.splitlines())) > LINE_WIDTH:
+            parts.append(current)
+            current = []
+        current.append(column)
+    parts.append(current)
+    return "\n\n".join(text_table(frame[keys + part]) for part in parts)
+
+
+def summary_text(summary: pd.DataFrame, digits: int = DEFAULT_DIGITS) -> str:
     """Per design and sample size, an aligned table of every estimator's performance."""
     if summary.empty:
         return "no finished replicates"
     blocks = []
-    table = display_table(summary)
+    table = display_table(summary, digits)
     for (design, n), group in table.groupby(["design", "n"], sort=False):
         target = summary.loc[summary["design"] == design, "target"].iloc[0]
         truth = summary.loc[(summary["design"] == design) & (summary["n"] == int(n)), "truth"].iloc[
@@ -113,7 +177,7 @@ def summary_text(summary: pd.DataFrame) -> str:
         ]
         blocks.append(
             f"{design} (target {target}, truth {_number(truth, 6)}), n = {n}\n"
-            + text_table(group.drop(columns=["design", "n"]))
+            + _narrow_tables(group.drop(columns=["design", "n"]))
         )
     return (
         "\n\n".join(blocks)
@@ -122,6 +186,7 @@ def summary_text(summary: pd.DataFrame) -> str:
 
 
 # ------------------------------------------------------------------------------------ ordering
+
 
 # The comparison table's order; other estimators (user replicate functions) follow by name.
 def _estimator_rank(name: str) -> tuple[int, str]:
@@ -243,12 +308,14 @@ def html_report(path: str | Path, summary: pd.DataFrame | None = None) -> str:
     summary = ordered(summarise_study(path) if summary is None else summary)
     results = read_results(path)
     level = _level(record)
+    few = few_replicates_note(summary)
     parts = [
         paragraph(
             "Values are Monte Carlo estimates with their Monte Carlo standard errors in "
             "parentheses; coverage is of each estimator's stored interval (bootstrap when the "
             "study ran one, else Wald)."
         ),
+        paragraph(f"Caution: {few}.", "note") if few else "",
         "<h2>Settings</h2>\n",
         f"<pre>{escape(json.dumps(record, indent=2, sort_keys=True))}</pre>\n",
     ]
@@ -262,11 +329,7 @@ def html_report(path: str | Path, summary: pd.DataFrame | None = None) -> str:
             shown = display_table(group).drop(columns=["design", "n"])
             measures = [c for c in shown.columns if c != "estimator"]
             rows = shown.itertuples(index=False)
-            parts.append(
-                '<div class="wide">'
-                + table(list(shown.columns), rows, align_right=measures)
-                + "</div>\n"
-            )
+            parts.append(table(list(shown.columns), rows, align_right=measures))
             replicates = results[(results["design"] == design) & (results["n"] == n)]
             names = list(group["estimator"])
             parts.append(

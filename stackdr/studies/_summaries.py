@@ -106,6 +106,7 @@ def _performance(group: pd.DataFrame) -> dict[str, float]:
     row["rmse_mcse"] = mse_mcse / (2 * row["rmse"]) if reps > 1 and mse > 0 else math.nan
     row["mae"] = float(np.median(np.abs(error))) if reps else math.nan
     row["mae_mcse"] = _bootstrap_median_se(np.abs(error))
+    row["mean_abs_error"], row["mean_abs_error_mcse"] = _mean_and_mcse(np.abs(error))
     with_interval = ok[np.isfinite(ok["low"]) & np.isfinite(ok["high"])]
     covered = (with_interval["low"] <= with_interval["truth"]) & (
         with_interval["truth"] <= with_interval["high"]
@@ -137,6 +138,8 @@ def summarise_study(path: str | Path) -> pd.DataFrame:
       ``sd(error^2) / sqrt(reps) / (2 rmse)``;
     - ``mae`` is the median absolute error; ``mae_mcse`` the bootstrap SE of that median over
       replicates (1000 resamples, fixed seed, see ``MEDIAN_BOOTSTRAP_SEED``);
+      ``mean_abs_error`` is the mean absolute error, ``mean_abs_error_mcse`` its sd over
+      sqrt(reps);
     - ``coverage_mcse = sqrt(p (1 - p) / m)`` and ``width_mcse = sd(width) / sqrt(m)`` over the
       m replicates with a finite interval; ``mean_se`` averages the reported standard errors.
 
@@ -149,8 +152,8 @@ def summarise_study(path: str | Path) -> pd.DataFrame:
     -------
     pandas.DataFrame
         One row per (design, n, estimator): target, reps, failed, truth, mean, bias, bias_mcse,
-        sd, sd_mcse, rmse, rmse_mcse, mae, mae_mcse, coverage, coverage_mcse, width, width_mcse,
-        mean_se, mean_se_mcse.
+        sd, sd_mcse, rmse, rmse_mcse, mae, mae_mcse, mean_abs_error, mean_abs_error_mcse,
+        coverage, coverage_mcse, width, width_mcse, mean_se, mean_se_mcse.
     """
     results = read_results(path)
     codes = results["code"].fillna("unrecorded").unique()

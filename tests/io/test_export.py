@@ -85,7 +85,8 @@ def test_weight_side_matches_blended_propensity(data):
     P, alpha = riesz.analysis.inputs[0].pi, riesz.alpha.to_numpy()
     np.testing.assert_allclose(table["weight_mu1"], (1 / P) @ alpha)
     np.testing.assert_allclose(table["weight_mu0"], (1 / (1 - P)) @ alpha)
-    assert table["propensity_scale"].iloc[0].startswith("probability-scale")
+    assert table.attrs["propensity_scale"].startswith("probability-scale")
+    assert "propensity_scale" not in table.columns and table["treatment"].dtype.kind == "i"
 
 
 def test_outcome_missing_where_target_does_not_use_it(data):

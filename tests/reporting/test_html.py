@@ -6,13 +6,13 @@ from html.parser import HTMLParser
 
 import pytest
 
+from stackdr.estimation import number_text
 from stackdr.reporting import html_report
 from stackdr.reporting._html import (
     CONTENT_POLICY,
     CSS,
     escape,
     figure,
-    number_text,
     page,
     paragraph,
     table,
@@ -47,8 +47,8 @@ def test_escape_and_numbers():
     assert escape(MARKUP) == "&lt;b&gt;x&lt;/b&gt; &amp; &#x27;y&#x27;"
     assert escape(3) == "3"
     assert [number_text(v) for v in (1 / 3, 12345678, None, True, "wald")] == [
-        "0.3333",
-        "1.235e+07",
+        "0.333",
+        "1.23e+07",
         "n/a",
         "True",
         "wald",
@@ -64,7 +64,7 @@ def test_table_aligns_numbers_and_escapes_text():
     )
     assert MARKUP not in html and escape(MARKUP) in html
     assert html.count('<td class="num">') == 4  # two numbers (None is n/a) and two right texts
-    assert '<td class="num">0.5</td>' in html and '<td class="num">n/a</td>' in html
+    assert '<td class="num">0.500</td>' in html and '<td class="num">n/a</td>' in html
     assert f"<td>{escape(MARKUP)}</td>" in html
     assert parsed(html).tags.count("tr") == 3
 
