@@ -105,12 +105,12 @@ def _tie_break_bound(results: dict, side: str):
     return None
 
 
-def _ternary_panel(ax, fig, V, names, mask, chosen, stacked, bound) -> None:
+def _ternary_panel(ax, fig, V, names, mask, chosen, stacked, bound, unit) -> None:
     weights, values = ternary_surface(V, mask)
     x, y = ternary_xy(weights)
     grid = Triangulation(x, y)
     contour = ax.tricontourf(grid, values, levels=12, cmap="viridis")
-    fig.colorbar(contour, ax=ax, shrink=0.8, label="sensitivity (range)")
+    fig.colorbar(contour, ax=ax, shrink=0.8, label=f"sensitivity ({unit})")
     if bound is not None and values.min() < bound < values.max():
         ax.tricontour(grid, values, levels=[bound], colors="white", linewidths=1.2, linestyles="--")
     corners_x, corners_y = ternary_xy(np.eye(3))
@@ -194,7 +194,7 @@ def landscape(results: dict) -> Figure:
         bound = _tie_break_bound(results, side)
         sub.suptitle(wrap(titles[side], 60), fontsize=STYLE["axes.titlesize"], x=0.02, ha="left")
         if kind == "ternary":
-            _ternary_panel(ax, sub, V, names, mask, chosen, stacked, bound)
+            _ternary_panel(ax, sub, V, names, mask, chosen, stacked, bound, unit_text(results))
         elif kind == "edges":
             _edge_panel(ax, V, names, mask, chosen, stacked, bound, unit_text(results))
         else:
