@@ -10,12 +10,12 @@ gives the same bytes, so a report rebuilt from ``results.json`` equals the origi
 
 from __future__ import annotations
 
-import json
 import pathlib
 
 from stackdr.estimation import BLEND_MEANINGS, column_text, number_text, units_sentence
 from stackdr.io import atomic_write, plain, validate_results
 from stackdr.reporting._figures import FIGURES, landscape_kind, render_figures
+from stackdr.reporting._fit_job import digits_of, job_section
 from stackdr.reporting._html import escape, figure, page, paragraph, table
 from stackdr.reporting._style import FORMATS
 from stackdr.reporting._tables import fit_tables, latex, markdown
@@ -36,42 +36,9 @@ SECTIONS = (
 )
 
 
-def _json_text(value) -> str:
-    return value if isinstance(value, str) else json.dumps(value, ensure_ascii=False)
-
-
 def _figure(figures: dict, name: str, caption: str) -> str:
     files = {fmt.upper(): f"figures/{name}.{fmt}" for fmt in FORMATS}
     return figure(figures[name]["png"], caption, ident=f"figure-{name}", files=files)
-
-
-def _digits(r: dict) -> int:
-    return r["presentation"]["digits"]
-
-
-def _provenance(r: dict) -> str:
-    prov = r["provenance"]
-    source = prov["input"]
-    rows = [["created (UTC)", prov["created_utc"]]]
-    if source is not None:
-        rows += [
-            ["data file", f"{source['file']} ({source['path']} from the report folder)"],
-            ["SHA-256 of the data file", source["sha256"]],
-            [
-                "data file size",
-                f"{source['rows']} rows \u00d7 {source['columns']} columns, "
-                f"{source['bytes']} bytes",
-            ],
-        ]
-    else:
-        rows.append(["data", "passed in Python (no file)"])
-    rows.append(["command line", prov["command_line"] or "none (a fit made in Python)"])
-    rows.append(["platform", prov["platform"]])
-    rows += [
-        [f"version of {name}", version or "not installed"]
-        for name, version in prov["versions"].items()
-    ]
-    return "<h3>Provenance</h3>\n" + table(["item", "value"], rows)
 
 
 def interval_description(results: dict) -> str:
@@ -93,74 +60,6 @@ def interval_description(results: dict) -> str:
 # ------------------------------------------------------------------------------ sections
 
 
-def _job(r: dict) -> str:
-    data, diag = r["data"], r["diagnostics"]
-    pairs = r["pair_table"]
-    out = paragraph(
-        f"What was estimated, from which data, and with which settings. The report was built from "
-        f"a saved results file (schema {r['schema']}, stackdr {r['package_version']}) and can be "
-        "rebuilt from it at any time."
-    )
-    out += table(
-        ["item", "value"],
-        [
-            ["target", f"{r['target']['name']}: {r['target']['description']}"],
-            ["rows (n)", r["n"]],
-            ["treatment column", data["treatment"]],
-            ["outcome column", data["outcome"]],
-            ["covariates", ", ".join(data["covariates"])],
-            ["propensity learners", ", ".join(pairs["rows"])],
-            ["outcome learners", ", ".join(pairs["columns"])],
-            ["seed", r["seed"]],
-        ],
-    )
-    out += _provenance(r)
-    out += "<h3>Settings</h3>\n" + table(
-        ["setting", "value"], [[k, _json_text(v)] for k, v in r["settings"].items()]
-    )
-    out += "<h3>Learners: out-of-fold prediction loss</h3>\n"
-    out += paragraph(
-        "Each learner's loss on rows it was not trained on (lower is better) and its weight in "
-        "prediction-loss stacking."
-    )
-    learners = diag["learners"]
-    # Each side's losses in one format: a log-loss and a squared error share no scale.
-    losses = {}
-    for side in {x["side"] for x in learners}:
-        rows = [i for i, x in enumerate(learners) if x["side"] == side]
-        texts = column_text([learners[i]["loss"] for i in rows], _digits(r))
-        losses.update(zip(rows, texts))
-    out += table(
-        ["side", "learner", "loss", "metric", "stacking weight", "fit seconds"],
-        [
-            [
-                x["side"],
-                x["learner"],
-                losses[i],
-                x["metric"],
-                x["stacking_weight"],
-                x["fit_seconds"],
-            ]
-            for i, x in enumerate(learners)
-        ],
-        align_right={"loss"},
-        digits=_digits(r),
-    )
-    if diag["failed_learners"]:
-        out += "<h3>Learners that failed</h3>\n" + table(
-            ["side", "learner", "reason"],
-            [[x["side"], x["learner"], x["reason"]] for x in diag["failed_learners"]],
-        )
-    if diag["notes"]:
-        out += "<h3>Notes from data validation</h3>\n<ul>\n"
-        out += "".join(f"<li>{escape(note)}</li>\n" for note in diag["notes"])
-        out += "</ul>\n"
-    out += "<h3>Timings (seconds)</h3>\n" + table(
-        ["stage", "seconds"], [[k, v] for k, v in r["timings"].items()]
-    )
-    return out
-
-
 def _se_words(method: str) -> str:
     return "bootstrap SE" if method == "bootstrap" else "influence-function (Wald) SE"
 
@@ -169,7 +68,7 @@ def _headline(r: dict) -> str:
     iv = r["interval"]
     sens = r["sensitivities"]
     main = r["estimators"][0]
-    digits = _digits(r)
+    digits = digits_of(r)
     out = paragraph(
         "The target-aimed estimate: learner weights chosen so that the estimate moves as little "
         "as possible when either learner library is swapped, then the doubly robust estimate at "
@@ -205,7 +104,7 @@ def _headline(r: dict) -> str:
 
 
 def _estimators(r: dict, figs: dict) -> str:
-    digits = _digits(r)
+    digits = digits_of(r)
     out = paragraph(
         "Every estimator computed on the same folds and predictions. Coloured bars are the "
         "reported intervals (bootstrap when run); the grey bars below them are Wald intervals, "
@@ -346,7 +245,7 @@ def _pairs(r: dict, figs: dict) -> str:
         )
     out += _figure(figs, "pair_table", "Pair table as a heat map")
     width = len(pairs["columns"])
-    digits = _digits(r)
+    digits = digits_of(r)
     values = column_text([v for row in pairs["values"] for v in row], digits)
     ses = column_text([v for row in pairs["standard_errors"] for v in row], digits)
     rows = [
@@ -544,7 +443,7 @@ def report_html(results: dict, figures: dict, *, title: str | None = None) -> st
     r = results
     title = title if title is not None else f"stackdr report: {r['target']['description']}"
     bodies = {
-        "job": _job(r),
+        "job": job_section(r),
         "headline": _headline(r),
         "estimators": _estimators(r, figures),
         "weights": _weights(r, figures),

@@ -97,13 +97,13 @@ def test_sklearn_contract():
     # Learners are cloned too: fresh, unfitted copies, never the user's objects.
     assert copy.propensity_learners["logit"] is not prop["logit"]
     assert clone(stackdr.BlendEstimator("ate")).get_params() == BlendEstimator("ate").get_params()
-    est.set_params(tie_break_scale=1.0, seed=3)
-    assert est.tie_break_scale == 1.0 and est.seed == 3
+    est.set_params(tie_break_scale=0.75, seed=3)
+    assert est.tie_break_scale == 0.75 and est.seed == 3
     with pytest.raises(ValueError):
         est.set_params(not_a_setting=1)
     assert repr(BlendEstimator()) == "BlendEstimator()"
     text = repr(est)
-    assert len(text) < 300 and "tie_break_scale=1.0" in text and "blend='probability'" in text
+    assert len(text) < 300 and "tie_break_scale=0.75" in text and "blend='probability'" in text
 
 
 def test_registry_orders_every_table():
