@@ -72,8 +72,9 @@ CELLS = [
 ]
 
 
-def path_for(label: str, seed: int) -> Path:
-    return RESULTS / f"grid_{label}_seed{seed}.sqlite"
+def path_for(label: str, design: str, n: int, seed: int) -> Path:
+    """One study file per cell (a study file fixes its designs and sizes)."""
+    return RESULTS / f"grid_{label}_{design}_n{n}_seed{seed}.sqlite"
 
 
 def run(seed: int, jobs: int, scale: float) -> None:
@@ -82,7 +83,7 @@ def run(seed: int, jobs: int, scale: float) -> None:
         for design, n, reps in cells:
             started = time.perf_counter()
             done = run_study(
-                path_for(label, seed),
+                path_for(label, design, n, seed),
                 design,
                 n,
                 max(2, int(round(reps * scale))),
@@ -107,42 +108,44 @@ def _fmt(value: float, se: float) -> str:
 
 def report(seed: int) -> pd.DataFrame:
     rows = []
-    for label, library, bootstrap, _ in CELLS:
-        path = path_for(label, seed)
-        if not path.exists():
-            continue
-        summary = summarise_study(path)
-        paired = paired_differences(path, MAIN, PLS)
-        results = read_results(path)
-        for _, p in paired.iterrows():
-            cell = summary[(summary["design"] == p["design"]) & (summary["n"] == p["n"])]
-            main = cell[cell["estimator"] == MAIN].iloc[0]
-            pls = cell[cell["estimator"] == PLS].iloc[0]
-            row = {
-                "library": library,
-                "design": p["design"],
-                "n": int(p["n"]),
-                "pairs": int(p["pairs"]),
-                "RMSE default": round(p["rmse_a"], 4),
-                "RMSE PLS": round(p["rmse_b"], 4),
-                "ratio": round(p["rmse_a"] / p["rmse_b"], 3),
-                "sq. error diff (MC SE)": _fmt(p["sq_error_diff"], p["sq_error_diff_mcse"]),
-                "bias default": round(main["bias"], 4),
-                "SD default": round(main["sd"], 4),
-                "bias PLS": round(pls["bias"], 4),
-                "SD PLS": round(pls["sd"], 4),
-            }
-            if bootstrap:
-                mine = results[
-                    (results["estimator"] == MAIN)
-                    & (results["design"] == p["design"])
-                    & (results["n"] == p["n"])
-                ]
-                row["boot SE / MC SD"] = round(
-                    float(np.nanmedian(mine["bootstrap_se"])) / main["sd"], 3
-                )
-                row["coverage (MC SE)"] = f"{main['coverage']:.3f} ({main['coverage_mcse']:.3f})"
-            rows.append(row)
+    for label, library, bootstrap, cells in CELLS:
+        for design, n, _ in cells:
+            path = path_for(label, design, n, seed)
+            if not path.exists():
+                continue
+            summary = summarise_study(path)
+            paired = paired_differences(path, MAIN, PLS)
+            results = read_results(path)
+            for _, p in paired.iterrows():
+                cell = summary[(summary["design"] == p["design"]) & (summary["n"] == p["n"])]
+                main = cell[cell["estimator"] == MAIN].iloc[0]
+                pls = cell[cell["estimator"] == PLS].iloc[0]
+                row = {
+                    "library": library,
+                    "design": p["design"],
+                    "n": int(p["n"]),
+                    "pairs": int(p["pairs"]),
+                    "RMSE default": round(p["rmse_a"], 4),
+                    "RMSE PLS": round(p["rmse_b"], 4),
+                    "ratio": round(p["rmse_a"] / p["rmse_b"], 3),
+                    "sq. error diff (MC SE)": _fmt(p["sq_error_diff"], p["sq_error_diff_mcse"]),
+                    "bias default": round(main["bias"], 4),
+                    "SD default": round(main["sd"], 4),
+                    "bias PLS": round(pls["bias"], 4),
+                    "SD PLS": round(pls["sd"], 4),
+                }
+                if bootstrap:
+                    mine = results[
+                        (results["estimator"] == MAIN)
+                        & (results["design"] == p["design"])
+                        & (results["n"] == p["n"])
+                    ]
+                    row["boot SE / MC SD"] = round(
+                        float(np.nanmedian(mine["bootstrap_se"])) / main["sd"], 3
+                    )
+                    coverage = f"{main['coverage']:.3f} ({main['coverage_mcse']:.3f})"
+                    row["coverage (MC SE)"] = coverage
+                rows.append(row)
     frame = pd.DataFrame(rows)
     commit = subprocess.run(
         ["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True, check=False

@@ -16,3 +16,18 @@ class LearnerError(StackdrError, RuntimeError):
 
 class PositivityWarning(UserWarning):
     """Propensities reached the clipping bounds: overlap between the arms is in doubt."""
+
+
+def warn_user(message: str, category: type[Warning] = UserWarning) -> None:
+    """Issue a warning attributed to the first caller outside stackdr (the user's own line),
+    so the printed source line is the user's call, not an internal one, however deep inside
+    the package the warning arises."""
+    import os
+    import sys
+    import warnings
+
+    package = os.path.dirname(os.path.abspath(__file__))
+    frame, level = sys._getframe(1), 2
+    while frame is not None and os.path.abspath(frame.f_code.co_filename).startswith(package):
+        frame, level = frame.f_back, level + 1
+    warnings.warn(message, category, stacklevel=level)

@@ -18,7 +18,6 @@ batched over many row-weight vectors, which the reweighting bootstrap uses
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -26,7 +25,7 @@ import numpy as np
 from scipy.optimize import nnls
 
 from stackdr.core._simplex_qp import simplex_qp
-from stackdr.errors import InputError
+from stackdr.errors import InputError, warn_user
 
 __all__ = [
     "StackResult",
@@ -179,13 +178,11 @@ def log_losses(probs: Any, a: Any, sample_weight: Any = None, eps: float = 1e-6)
 
 
 def warn_fallback(count: int, total: int) -> None:
-    warnings.warn(
+    warn_user(
         f"NNLS stacking gave all-zero coefficients in {count} of {total} fit(s) (no learner "
         "correlates positively with the outcome); falling back to the single learner with the "
         "lowest weighted squared error",
-        RuntimeWarning,
-        stacklevel=3,
-    )
+        RuntimeWarning)
 
 
 def nnls_stack(preds: Any, y: Any, sample_weight: Any = None) -> StackResult:
@@ -370,11 +367,9 @@ def logloss_stack(
     grad = (rows[0] * blend_derivatives(p, aa, x[0], eps)[0]) @ p
     details.update(iterations=int(iterations[0]), optimality_gap=float(grad @ x[0] - grad.min()))
     if not converged[0]:
-        warnings.warn(
+        warn_user(
             f"log-loss stacking stopped after {max_iter} Newton steps before converging",
-            RuntimeWarning,
-            stacklevel=2,
-        )
+            RuntimeWarning)
     status = "optimal" if converged[0] else "max_iter"
     return StackResult(x[0], float(value[0]), status, "logloss-newton", details)
 

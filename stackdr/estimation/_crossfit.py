@@ -7,7 +7,6 @@ processes or on a dask.distributed cluster (``joblib.parallel_config(backend="da
 from __future__ import annotations
 
 import time
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -16,7 +15,7 @@ from sklearn.base import clone
 from sklearn.model_selection import KFold, StratifiedKFold
 
 from stackdr.core import Target
-from stackdr.errors import InputError, LearnerError, PositivityWarning
+from stackdr.errors import InputError, LearnerError, PositivityWarning, warn_user
 from stackdr.estimation._data import PreparedData
 from stackdr.estimation._parallel import native_threads, threads_per_fit
 from stackdr.estimation._settings import validate_params
@@ -311,7 +310,7 @@ def cross_fit(
         text = f"{side} learner {name!r} failed and was dropped: {msg}"
         if on_error == "raise":
             raise LearnerError(text)
-        warnings.warn(text, stacklevel=2)
+        warn_user(text)
     prop_names = [k for k in propensity_library if f"propensity:{k}" not in failures]
     out_names = [k for k in outcome_library if f"outcome:{k}" not in failures]
     for side, names in (("propensity", prop_names), ("outcome", out_names)):
@@ -356,13 +355,11 @@ def _warn_clipping(clip_counts: np.ndarray, names: list, n: int, clip: float) ->
     if not order:
         return
     listed = ", ".join(f"{names[k]!r} {100 * shares[k]:.1f}% of rows" for k in order)
-    warnings.warn(
+    warn_user(
         f"positivity: propensities outside [{clip:g}, {1 - clip:g}] were clipped for "
         f"{len(order)} of {len(names)} propensity learners ({listed}); overlap between the "
         "arms is in doubt for those rows and their estimates lean on the clipping bound",
-        PositivityWarning,
-        stacklevel=3,
-    )
+        PositivityWarning)
 
 
 def _outcome_units(X, A, train, test, needed, heads, mode):

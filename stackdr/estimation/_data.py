@@ -7,14 +7,13 @@ from __future__ import annotations
 
 import contextlib
 import logging
-import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
 from stackdr.core import Target
-from stackdr.errors import InputError
+from stackdr.errors import InputError, warn_user
 
 log = logging.getLogger("stackdr")
 
@@ -124,13 +123,11 @@ def _covariate_frame(frame: pd.DataFrame, notes: list[str]) -> tuple[np.ndarray,
         for col in encoded_cols:
             levels = frame[col].nunique()
             if levels > min(100, len(frame) / 2):
-                warnings.warn(
+                warn_user(
                     f"covariate {col!r} has {levels} distinct text values in {len(frame)} rows "
                     f"and becomes {levels - 1} indicator columns; an identifier or free text "
                     "is not a covariate (leave it out with covariates=...)",
-                    UserWarning,
-                    stacklevel=3,
-                )
+                    UserWarning)
         if encoded_cols:
             frame = pd.get_dummies(frame, columns=encoded_cols, drop_first=True, dtype=float)
             note = "one-hot encoded non-numeric covariates: " + ", ".join(map(repr, encoded_cols))
@@ -262,13 +259,11 @@ def prepare_data(
         raise InputError(f"outcome column {y_name!r} has infinite values")
     _check_magnitude(Y[needed], "outcome", y_name)
     if np.ptp(Y[needed]) == 0:
-        warnings.warn(
+        warn_user(
             f"outcome column {y_name!r} is constant ({Y[needed][0]:g}) in the rows the target "
             "uses: every learner predicts it exactly, so the estimate is that trivial value "
             "with standard error 0; check that this is the intended column",
-            UserWarning,
-            stacklevel=2,
-        )
+            UserWarning)
     Y = np.where(needed, Y, 0.0)
     X, cov_names = _covariate_frame(x_frame, notes)
     return PreparedData(X, A, Y, cov_names, str(t_name), str(y_name), notes)

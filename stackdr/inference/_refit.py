@@ -10,7 +10,7 @@ from collections.abc import Callable
 import numpy as np
 from joblib import Parallel, delayed
 
-from stackdr.errors import InputError, StackdrError
+from stackdr.errors import InputError, StackdrError, warn_user
 from stackdr.inference._common import (
     BootstrapResult,
     InferenceSettings,
@@ -96,11 +96,9 @@ def refit_bootstrap(
     if len(failed) == B:
         raise InputError(f"no refit bootstrap replicate could be fitted; the first: {failed[0]}")
     if failed:
-        warnings.warn(
+        warn_user(
             f"{len(failed)} of {B} refit bootstrap replicates could not be fitted and were left "
             f"out of the interval (the first: {failed[0]})",
-            RuntimeWarning,
-            stacklevel=2,
-        )
+            RuntimeWarning)
     stage = {"total": time.perf_counter() - t0}
     return summarise_replicates(result, est, alphas, betas, moved, "refit", method, 1, stage)

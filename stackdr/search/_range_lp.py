@@ -12,6 +12,7 @@ import cvxpy as cp
 import numpy as np
 from numpy.typing import ArrayLike
 
+from stackdr.errors import warn_user
 from stackdr.search._external_solvers import CLARABEL_TIGHT, CVXPY_SOLVED, highs_range_lp
 from stackdr.search._records import (
     SolveResult,
@@ -28,11 +29,9 @@ __all__ = ["minimise_range_cvxpy", "minimise_range_lp"]
 def _vertex_fallback(
     Vm: np.ndarray, method: str, reason: str, started: float, details: dict
 ) -> SolveResult:
-    warnings.warn(
+    warn_user(
         f"{method} failed ({reason}); falling back to the best single learner (vertex)",
-        RuntimeWarning,
-        stacklevel=3,
-    )
+        RuntimeWarning)
     ranges = np.ptp(Vm, axis=1)
     k = int(np.argmin(ranges))
     weights = np.zeros(Vm.shape[0])

@@ -8,7 +8,6 @@ from __future__ import annotations
 import functools
 import math
 import time
-import warnings
 from collections.abc import Callable, Sequence
 
 import clarabel
@@ -17,7 +16,7 @@ from numpy.typing import ArrayLike
 from scipy.optimize import minimize
 from scipy.sparse import csc_matrix
 
-from stackdr.errors import InputError
+from stackdr.errors import InputError, warn_user
 from stackdr.search._external_solvers import CLARABEL_SOLVED, CLARABEL_TIGHT
 from stackdr.search._lattice import CountedObjective, simplex_lattice
 from stackdr.search._range_lp import range_lp_template, range_rows
@@ -182,11 +181,9 @@ def tie_break_range(
         elif excess > 0:  # round-off: the pure minimiser is the projection
             w, r_w = start, r_pure
     if failure is not None:
-        warnings.warn(
+        warn_user(
             f"tie-break failed: {failure}; stepping from the pure minimiser towards the anchor",
-            RuntimeWarning,
-            stacklevel=2,
-        )
+            RuntimeWarning)
         w = _segment_point(lambda W: np.ptp(W @ Vm, axis=1), start, anchor, bound)
         return record(w, float(np.ptp(w @ Vm)), "fallback", "tie_break_qp", anchor_feasible=False)
     return record(w, r_w, status, "tie_break_qp", anchor_feasible=False)
