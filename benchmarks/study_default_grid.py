@@ -21,7 +21,6 @@ Monte Carlo SEs, RMSE ratios, bias and SD per estimator). Usage::
 from __future__ import annotations
 
 import argparse
-import subprocess
 import sys
 import time
 from pathlib import Path
@@ -35,6 +34,7 @@ from stackdr.studies import (
     make_replicate,
     paired_differences,
     read_results,
+    read_study_record,
     run_study,
     summarise_study,
 )
@@ -147,20 +147,25 @@ def report(seed: int) -> pd.DataFrame:
                     row["coverage (MC SE)"] = coverage
                 rows.append(row)
     frame = pd.DataFrame(rows)
-    commit = subprocess.run(
-        ["git", "rev-parse", "--short", "HEAD"], capture_output=True, text=True, check=False
-    ).stdout.strip()
+    codes = sorted(
+        {
+            read_study_record(path)["code"]
+            for label, _, _, cells in CELLS
+            for design, n, _ in cells
+            if (path := path_for(label, design, n, seed)).exists()
+        }
+    )
     RESULTS.mkdir(exist_ok=True)
     frame.to_csv(RESULTS / f"study_default_grid_seed{seed}.csv", index=False)
     head = (
         f"# Default weighting vs prediction-loss stacking, study seed {seed}\n\n"
-        f"Code: commit {commit} (every replicate records its code fingerprint in the study "
-        "file). Paired squared-error difference = mean over replicates of (default error^2 - "
-        "PLS error^2), MC SE = SD of the differences / sqrt(pairs); * beyond 2 MC SE; negative "
-        "favours the default.\n\n"
+        f"Code fingerprint of the package that ran the replicates: {', '.join(codes)} (version "
+        "and digest of the package sources, recorded in every study file). Paired squared-error "
+        "difference = mean over replicates of (default error^2 - PLS error^2), MC SE = SD of "
+        "the differences / sqrt(pairs); * beyond 2 MC SE; negative favours the default.\n\n"
     )
     (RESULTS / f"study_default_grid_seed{seed}.md").write_text(
-        head + markdown_table(frame) + "\n"
+        head + markdown_table(frame.astype(object).where(frame.notna(), "").astype(str)) + "\n"
     )
     print(frame.to_string(index=False))
     return frame
