@@ -52,9 +52,10 @@ def worker(n: int, p: int, jobs: int, bootstrap: int, threads: int | None) -> di
     start_cpu = time.process_time()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        result = BlendEstimator(
-            "ate", bootstrap=bootstrap, n_jobs=jobs, threads=threads, seed=0
-        ).fit(X, A, Y)
+        extra = {} if threads is None else {"threads": threads}
+        result = BlendEstimator("ate", bootstrap=bootstrap, n_jobs=jobs, seed=0, **extra).fit(
+            X, A, Y
+        )
     usage = resource.getrusage(resource.RUSAGE_CHILDREN)
     return {
         "estimate": result.estimate,
@@ -89,6 +90,9 @@ def main() -> None:
     parser.add_argument("--threads", type=int, default=None)
     parser.add_argument(
         "--concurrent", action="store_true", help="also time two runs started together"
+    )
+    parser.add_argument(
+        "--label", default="", help="written to results/pipeline_LABEL.json (default pipeline.json)"
     )
     parser.add_argument("--worker", action="store_true", help=argparse.SUPPRESS)
     parser.add_argument("--n", type=int, help=argparse.SUPPRESS)
@@ -139,7 +143,8 @@ def main() -> None:
     )
     print()
     print_table(learners, "Fit time per learner (one run alone)")
-    write_json("pipeline", {"settings": vars(args), "runs": rows, "learners": learners})
+    name = f"pipeline_{args.label}" if args.label else "pipeline"
+    write_json(name, {"settings": vars(args), "runs": rows, "learners": learners})
 
 
 if __name__ == "__main__":

@@ -14,6 +14,10 @@ class LearnerError(StackdrError, RuntimeError):
     """A learner failed in a way that leaves a library unusable."""
 
 
+class WorkerLostError(StackdrError, RuntimeError):
+    """A distributed worker died repeatedly while running the same task."""
+
+
 class PositivityWarning(UserWarning):
     """Propensities reached the clipping bounds: overlap between the arms is in doubt."""
 

@@ -128,11 +128,16 @@ def _predict(est, X, kind):
     return np.asarray(est.predict(X), dtype=float).reshape(-1)
 
 
-def _fit_and_predict(estimator, X_train, y_train, test_inputs, kind, threads: int = 1):
-    """One task: fit a clone, predict on each test input, with at most ``threads`` native
-    threads (the cap applies wherever the task runs: this process, a local worker or a dask
-    worker). Errors are returned, not raised, so the caller can name the learner and apply the
-    library's failure policy."""
+def _fit_and_predict(estimator, train: tuple, test_inputs: list, kind, threads: int = 1):
+    """One task: fit a clone on ``train = (X, y)``, predict on each test input, with at most
+    ``threads`` native threads (the cap applies wherever the task runs: this process, a local
+    worker or a dask worker). Errors are returned, not raised, so the caller can name the learner
+    and apply the library's failure policy.
+
+    The arrays travel inside a tuple and a list on purpose: joblib's dask backend would scatter
+    bare arrays to a single worker, and losing that worker would lose the data of the tasks
+    still waiting for it; inside the task, they are rerun elsewhere with the task."""
+    X_train, y_train = train
     start = time.perf_counter()
     try:
         with native_threads(threads):
@@ -257,7 +262,7 @@ def cross_fit(
             for name, est in propensity_library.items():
                 tasks.append(
                     delayed(_fit_and_predict)(
-                        est, X[train], A[train], [X[test]], prop_kind, per_fit
+                        est, (X[train], A[train]), [X[test]], prop_kind, per_fit
                     )
                 )
                 keys.append(("propensity", name, r, test, None))
@@ -268,7 +273,7 @@ def cross_fit(
                 ):
                     tasks.append(
                         delayed(_fit_and_predict)(
-                            est, inputs[0], Y[fit_rows], inputs[1], "regressor", per_fit
+                            est, (inputs[0], Y[fit_rows]), inputs[1], "regressor", per_fit
                         )
                     )
                     keys.append(("outcome", name, r, test, unit_heads))

@@ -19,7 +19,7 @@ import numpy as np
 from joblib import parallel_config
 from threadpoolctl import threadpool_limits
 
-from stackdr.errors import InputError
+from stackdr.errors import InputError, WorkerLostError
 
 BACKENDS = ("dask",)
 
@@ -63,6 +63,38 @@ def check_cluster(backend: str | None, cluster: Any) -> None:
         )
     if isinstance(cluster, str) and not cluster.strip():
         raise InputError("cluster scheduler address is empty")
+
+
+def _loss_aware_dask_backend() -> str:
+    """Register (once) and name joblib's dask backend with one change: a task that fails in
+    dask itself (not in our code), e.g. after its workers died too often, is reported to joblib
+    as an error. joblib 1.6's dask backend only stores such a failure and never tells the
+    waiting ``Parallel`` call, which then waits forever."""
+    import asyncio
+
+    from joblib import register_parallel_backend
+    from joblib._dask import DaskDistributedBackend
+
+    class LossAwareDaskBackend(DaskDistributedBackend):
+        async def _collect(self):
+            while self._continue:
+                async for future, result in self.waiting_futures:
+                    done = self._results.pop(future)
+                    callback = self._callbacks.pop(future)
+                    if future.status == "error":
+                        error = result[1]
+                        done.set_exception(error)
+                        callback(error)  # joblib raises it where the results are read
+                    else:
+                        done.set_result(result)
+                        callback(result)
+                await asyncio.sleep(0.01)
+
+    register_parallel_backend(_DASK_BACKEND_NAME, LossAwareDaskBackend)
+    return _DASK_BACKEND_NAME
+
+
+_DASK_BACKEND_NAME = "dask-loss-aware"
 
 
 @contextmanager
@@ -111,9 +143,19 @@ def dask_backend(cluster: Any = None, jobs: int = 1) -> Iterator[Any]:
         local = LocalCluster(n_workers=int(cluster), threads_per_worker=1, dashboard_address=":0")
         client = Client(local, set_as_default=False)
         owned += [client, local]
+    from distributed import KilledWorker
+
     try:
-        with parallel_config(backend="dask", client=client):
+        with parallel_config(backend=_loss_aware_dask_backend(), client=client):
             yield client
+    except KilledWorker as error:
+        # The scheduler reruns the tasks of a worker that dies on the other workers; only a
+        # task that kills its worker again and again ends up here.
+        raise WorkerLostError(
+            f"a dask worker died each time it ran task {error.task!r} (the scheduler's "
+            "'distributed.scheduler.allowed-failures' limit); nothing was written, and a study "
+            "resumes from its stored replicates when rerun"
+        ) from None
     finally:
         for resource in owned:
             resource.close()

@@ -1,12 +1,17 @@
 """Scale-out on dask.distributed: a study and a BlendEstimator fit on a two-worker cluster give
 exactly the results of a local run with the same seeds."""
 
+import os
+from pathlib import Path
+
 import numpy as np
 import pandas as pd
 import pytest
+from sklearn.base import BaseEstimator, ClassifierMixin
+from sklearn.linear_model import LogisticRegression
 
 from stackdr import BlendEstimator
-from stackdr.errors import InputError
+from stackdr.errors import InputError, WorkerLostError
 from stackdr.estimation import (
     check_cluster,
     dask_jobs,
@@ -125,3 +130,115 @@ def test_estimate_command_on_a_local_cluster(tmp_path):
     remote = json.loads((tmp_path / "dask" / "results.json").read_text())
     assert remote["estimate"] == local["estimate"]
     assert main([*common, "--local-cluster", "0", "--out", str(tmp_path / "bad")]) == 2
+
+
+class _ExitsWorker(BaseEstimator, ClassifierMixin):
+    """Penalised logistic regression whose fit ends its own process while ``marker`` does not
+    exist (it creates the file first, so ``once=True`` kills exactly one worker). The process
+    exit stands for a worker lost mid-run: out of memory, a pre-empted machine, a crashed native
+    library."""
+
+    def __init__(self, marker="", once=True):
+        self.marker = marker
+        self.once = once
+
+    def fit(self, X, y):
+        if not os.path.exists(self.marker) or not self.once:
+            Path(self.marker).touch()
+            os._exit(1)
+        self.model_ = LogisticRegression(C=0.05).fit(X, y)
+        self.classes_ = self.model_.classes_
+        return self
+
+    def predict_proba(self, X):
+        return self.model_.predict_proba(X)
+
+
+def _lossy_fit(marker, once, **kwargs):
+    data = get_design("lunceford-davidian").simulate(200, np.random.default_rng(9))
+    learners = {"logistic": LogisticRegression(), "exits": _ExitsWorker(str(marker), once)}
+    return BlendEstimator(
+        "ate",
+        propensity_learners=learners,
+        outcome_learners=parametric_outcome_library(),
+        bootstrap=0,
+        seed=2,
+        **kwargs,
+    ).fit(data.frame, data.treatment, data.outcome, data.covariates)
+
+
+@pytest.mark.slow
+def test_a_worker_killed_mid_run_has_its_task_rerun(tmp_path):
+    # The first fit of the lossy learner kills its worker; the nanny starts a new one and the
+    # scheduler reruns the lost task, so the fit equals the local run (the local run is made
+    # after the marker exists, so its learner fits normally). A job whose task keeps killing
+    # workers stops with one line (next test).
+    marker = tmp_path / "killed-once"
+    with (
+        distributed.LocalCluster(
+            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
+        ) as cluster,
+        distributed.Client(cluster, set_as_default=False) as c,
+    ):
+        remote = _lossy_fit(marker, True, backend="dask", cluster=c)
+    assert marker.exists()
+    local = _lossy_fit(marker, True)
+    # Equal up to summation order: the rerun fit ran in another process, where this learner
+    # (plain lbfgs logistic regression) can differ in the last bit.
+    np.testing.assert_allclose(remote.crossfit.propensity, local.crossfit.propensity, rtol=1e-12)
+    pd.testing.assert_frame_equal(
+        remote.comparison(), local.comparison(), check_exact=False, rtol=1e-9
+    )
+
+
+@pytest.mark.slow
+def test_a_task_that_keeps_killing_workers_stops_the_job_with_one_line(tmp_path):
+    with (
+        distributed.LocalCluster(
+            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
+        ) as cluster,
+        distributed.Client(cluster, set_as_default=False) as c,
+    ):
+        with pytest.raises(WorkerLostError, match="a dask worker died each time it ran task"):
+            _lossy_fit(tmp_path / "always", False, backend="dask", cluster=c)
+
+
+class _ReplicateExitsWorkerOnce:
+    """A study's replicate function whose first call anywhere ends its worker process."""
+
+    def __init__(self, inner, marker):
+        self.inner, self.marker = inner, marker
+
+    def __call__(self, data, seed):
+        if not os.path.exists(self.marker):
+            Path(self.marker).touch()
+            os._exit(1)
+        return self.inner(data, seed)
+
+
+@pytest.mark.slow
+def test_a_study_whose_worker_is_killed_equals_the_local_run(tmp_path):
+    # The lost replicate is rerun on another worker; every replicate is stored once.
+    replicate = _ReplicateExitsWorkerOnce(make_replicate("parametric"), str(tmp_path / "m"))
+    settings = {"designs": ["lunceford-davidian"], "seed": 3, "progress": False}
+    with (
+        distributed.LocalCluster(
+            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
+        ) as cluster,
+        distributed.Client(cluster, set_as_default=False) as c,
+    ):
+        run_study(
+            tmp_path / "d.sqlite",
+            ns=150,
+            reps=3,
+            replicate_fn=replicate,
+            backend="dask",
+            cluster=c,
+            **settings,
+        )
+    assert (tmp_path / "m").exists()
+    run_study(tmp_path / "l.sqlite", ns=150, reps=3, replicate_fn=replicate, **settings)
+    remote = read_results(tmp_path / "d.sqlite").drop(columns=TIMING)
+    local = read_results(tmp_path / "l.sqlite").drop(columns=TIMING)
+    assert sorted(set(remote["rep"])) == [0, 1, 2]
+    pd.testing.assert_frame_equal(remote, local, check_exact=False, rtol=1e-9)
