@@ -445,7 +445,7 @@ def test_garbage_as_real_processes(tmp_path):
     (tmp_path / "noise.csv").write_bytes(rng.integers(0, 256, 2000, dtype=np.uint8).tobytes())
     (tmp_path / "noise.toml").write_bytes(b"[settings]\nfolds = \xff\xfe\n")
     (tmp_path / "ok.csv").write_text("a,y,x1\n1,2.0,0.5\n0,1.0,0.1\n")
-    env = {**os.environ, "TMPDIR": str(private), "OMP_NUM_THREADS": "1"}
+    env = {**os.environ, "TMPDIR": str(private)}
     commands = {
         "noise data": estimate_args("noise.csv", "out1"),
         "noise config": estimate_args("ok.csv", "out2", config="noise.toml"),
