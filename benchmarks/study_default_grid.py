@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from stackdr.reporting import markdown_table
-from stackdr.search import MAIN, PLS
+from stackdr.search import MAIN, PLS, SMOOTHED
 from stackdr.studies import (
     StudyCodeError,
     make_replicate,
@@ -122,6 +122,13 @@ def report(seed: int) -> pd.DataFrame:
                 continue
             summary = summarise_study(path)
             paired = paired_differences(path, MAIN, PLS)
+            try:
+                smoothed = {
+                    (r["design"], r["n"]): r
+                    for _, r in paired_differences(path, SMOOTHED, PLS).iterrows()
+                }
+            except (KeyError, ValueError):  # a study file from before the smoothed row
+                smoothed = {}
             results = read_results(path)
             for _, p in paired.iterrows():
                 cell = summary[(summary["design"] == p["design"]) & (summary["n"] == p["n"])]
@@ -141,6 +148,14 @@ def report(seed: int) -> pd.DataFrame:
                     "bias PLS": round(pls["bias"], 4),
                     "SD PLS": round(pls["sd"], 4),
                 }
+                # The smoothed selector (pair weights proportional to exp(-tau x risk / scale))
+                # against the same PLS replicates, where the cell's study stored it.
+                smooth = smoothed.get((p["design"], p["n"]))
+                if smooth is not None:
+                    row["RMSE smoothed"] = round(smooth["rmse_a"], 4)
+                    row["smoothed - PLS (MC SE)"] = _fmt(
+                        smooth["sq_error_diff"], smooth["sq_error_diff_mcse"]
+                    )
                 if bootstrap:
                     mine = results[
                         (results["estimator"] == MAIN)
