@@ -364,7 +364,8 @@ def _warn_clipping(clip_counts: np.ndarray, names: list, n: int, clip: float) ->
         f"positivity: propensities outside [{clip:g}, {1 - clip:g}] were clipped for "
         f"{len(order)} of {len(names)} propensity learners ({listed}); overlap between the "
         "arms is in doubt for those rows and their estimates lean on the clipping bound",
-        PositivityWarning)
+        PositivityWarning,
+    )
 
 
 def _outcome_units(X, A, train, test, needed, heads, mode):

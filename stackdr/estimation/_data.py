@@ -127,7 +127,8 @@ def _covariate_frame(frame: pd.DataFrame, notes: list[str]) -> tuple[np.ndarray,
                     f"covariate {col!r} has {levels} distinct text values in {len(frame)} rows "
                     f"and becomes {levels - 1} indicator columns; an identifier or free text "
                     "is not a covariate (leave it out with covariates=...)",
-                    UserWarning)
+                    UserWarning,
+                )
         if encoded_cols:
             frame = pd.get_dummies(frame, columns=encoded_cols, drop_first=True, dtype=float)
             note = "one-hot encoded non-numeric covariates: " + ", ".join(map(repr, encoded_cols))
@@ -263,7 +264,8 @@ def prepare_data(
             f"outcome column {y_name!r} is constant ({Y[needed][0]:g}) in the rows the target "
             "uses: every learner predicts it exactly, so the estimate is that trivial value "
             "with standard error 0; check that this is the intended column",
-            UserWarning)
+            UserWarning,
+        )
     Y = np.where(needed, Y, 0.0)
     X, cov_names = _covariate_frame(x_frame, notes)
     return PreparedData(X, A, Y, cov_names, str(t_name), str(y_name), notes)

@@ -497,7 +497,6 @@ class BlendEstimator(BaseEstimator):
         )
 
 
-
 def combine_repeats(estimates, ses) -> tuple[float, float]:
     """Median over repeated splits, with the spread-adjusted SE of Chernozhukov et al. (2018)."""
     est = np.asarray(estimates, dtype=float)
