@@ -22,6 +22,7 @@ test: $(STAMP)
 
 lint: $(STAMP)
 	$(BIN)/ruff check stackdr tests benchmarks examples
+	$(BIN)/ruff format --check stackdr tests benchmarks examples
 
 # The benchmark scripts (not the Monte Carlo studies); bench-quick at small sizes, its JSON
 # files in a scratch folder.

@@ -99,3 +99,21 @@ def test_layers_and_private_boundaries():
             if crosses and any(n.startswith("_") and n != "__version__" for n in names):
                 problems.append(f"{name} imports private names {names} from {module}")
     assert problems == []
+
+
+def test_sources_pass_the_linter_and_the_formatter():
+    # Common practice: CI fails on lint and format drift, so no later change carries another's
+    # reformatting. ruff comes with the dev extra; skipped where it is not installed.
+    import shutil
+    import subprocess
+    import sys
+
+    ruff = shutil.which("ruff", path=str(Path(sys.executable).parent)) or shutil.which("ruff")
+    if ruff is None:
+        import pytest
+
+        pytest.skip("ruff is not installed")
+    folders = [str(ROOT.parent / f) for f in ("stackdr", "tests", "benchmarks", "examples")]
+    for command in (["check", "--quiet"], ["format", "--check", "--quiet"]):
+        done = subprocess.run([ruff, *command, *folders], capture_output=True, text=True)
+        assert done.returncode == 0, f"ruff {command[0]}:\n{done.stdout}{done.stderr}"
