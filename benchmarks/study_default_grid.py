@@ -199,7 +199,16 @@ def main() -> None:
     parser.add_argument("--jobs", type=int, default=1)
     parser.add_argument("--reps-scale", type=float, default=1.0)
     parser.add_argument("--report", action="store_true", help="only summarise stored results")
+    parser.add_argument(
+        "--folder",
+        type=Path,
+        default=RESULTS,
+        help="where the study files and the tables go (a fresh folder runs the whole grid at "
+        "the current code)",
+    )
     args = parser.parse_args()
+    global RESULTS
+    RESULTS = args.folder
     if not args.report:
         run(args.seed, args.jobs, args.reps_scale)
     report(args.seed)
