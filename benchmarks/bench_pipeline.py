@@ -134,9 +134,7 @@ def main() -> None:
                                 "share": f"{secs / total:.0%}",
                             }
                         )
-    print_table(
-        [{k: v for k, v in r.items() if k != "runs"} for r in rows], "End to end, per run"
-    )
+    print_table([{k: v for k, v in r.items() if k != "runs"} for r in rows], "End to end, per run")
     print()
     print_table(learners, "Fit time per learner (one run alone)")
     write_json("pipeline", {"settings": vars(args), "runs": rows, "learners": learners})

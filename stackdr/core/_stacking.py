@@ -182,7 +182,8 @@ def warn_fallback(count: int, total: int) -> None:
         f"NNLS stacking gave all-zero coefficients in {count} of {total} fit(s) (no learner "
         "correlates positively with the outcome); falling back to the single learner with the "
         "lowest weighted squared error",
-        RuntimeWarning)
+        RuntimeWarning,
+    )
 
 
 def nnls_stack(preds: Any, y: Any, sample_weight: Any = None) -> StackResult:
@@ -369,7 +370,7 @@ def logloss_stack(
     if not converged[0]:
         warn_user(
             f"log-loss stacking stopped after {max_iter} Newton steps before converging",
-            RuntimeWarning)
+            RuntimeWarning,
+        )
     status = "optimal" if converged[0] else "max_iter"
     return StackResult(x[0], float(value[0]), status, "logloss-newton", details)
-

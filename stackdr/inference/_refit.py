@@ -99,6 +99,7 @@ def refit_bootstrap(
         warn_user(
             f"{len(failed)} of {B} refit bootstrap replicates could not be fitted and were left "
             f"out of the interval (the first: {failed[0]})",
-            RuntimeWarning)
+            RuntimeWarning,
+        )
     stage = {"total": time.perf_counter() - t0}
     return summarise_replicates(result, est, alphas, betas, moved, "refit", method, 1, stage)

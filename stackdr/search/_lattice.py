@@ -198,4 +198,3 @@ def pattern_search(
         F[winners] = best_val[improved]
         steps[live[~improved]] /= 2
     return X, F, max_iter
-

@@ -355,4 +355,3 @@ def grid_refine(
     )
     status = polish_stops[best]
     return SolveResult(X[best], float(F[best]), status, "grid_refine", since(started), details)
-

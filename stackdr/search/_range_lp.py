@@ -31,7 +31,8 @@ def _vertex_fallback(
 ) -> SolveResult:
     warn_user(
         f"{method} failed ({reason}); falling back to the best single learner (vertex)",
-        RuntimeWarning)
+        RuntimeWarning,
+    )
     ranges = np.ptp(Vm, axis=1)
     k = int(np.argmin(ranges))
     weights = np.zeros(Vm.shape[0])
@@ -179,4 +180,3 @@ def minimise_range_cvxpy(
     return SolveResult(
         weights, float(np.ptp(weights @ Vm)), status, "range_cvxpy", since(started), details
     )
-

@@ -183,7 +183,8 @@ def tie_break_range(
     if failure is not None:
         warn_user(
             f"tie-break failed: {failure}; stepping from the pure minimiser towards the anchor",
-            RuntimeWarning)
+            RuntimeWarning,
+        )
         w = _segment_point(lambda W: np.ptp(W @ Vm, axis=1), start, anchor, bound)
         return record(w, float(np.ptp(w @ Vm)), "fallback", "tie_break_qp", anchor_feasible=False)
     return record(w, r_w, status, "tie_break_qp", anchor_feasible=False)
@@ -400,4 +401,3 @@ def vertex_tie_break(
         bound=bound,
         anchor_feasible=False,
     )
-

@@ -159,4 +159,3 @@ class Design:
 def check_target(target: str) -> None:
     if target not in TARGETS:
         raise InputError(f"unknown target {target!r}; valid targets: {', '.join(TARGETS)}")
-

@@ -371,5 +371,3 @@ def _execute(
         yield from Parallel(n_jobs=jobs, backend=backend, return_as="generator_unordered")(
             delayed(_run_replicate)(*task) for task in tasks
         )
-
-

@@ -253,4 +253,3 @@ def write_replicate(conn: sqlite3.Connection, outcome: dict[str, Any]) -> None:
                 code_fingerprint(),
             ),
         )
-
