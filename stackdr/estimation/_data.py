@@ -311,9 +311,9 @@ def prepare_data(
             UserWarning,
         )
     Y = np.where(needed, Y, 0.0)
-    X, cov_names = _covariate_frame(x_frame, notes)
     w = None if w_raw is None else sampling_weights(w_raw, str(w_name), A, t_name, target)
     codes = None if g_raw is None else cluster_codes(g_raw, str(g_name), folds)
+    X, cov_names = _covariate_frame(x_frame, notes)
     return PreparedData(
         X,
         A,
