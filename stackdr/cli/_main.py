@@ -237,14 +237,18 @@ def _run_report(args: argparse.Namespace) -> int:
 
 
 def learner_table() -> str:
-    """The learner catalogue as text within 100 characters a line: name, kind and parameters
-    (defaults), then the description on indented lines."""
-    from stackdr.estimation import CATALOGUE
+    """The learner catalogue as text within 100 characters a line: name, kind, whether its fit
+    uses sampling weights (``--weights``), parameters (defaults), then the description on
+    indented lines."""
+    from stackdr.estimation import CATALOGUE, accepts_sample_weight
 
     lines = []
     for name, entry in CATALOGUE.items():
         params = ", ".join(f"{k}={v!r}" for k, v in entry.defaults.items()) or "no parameters"
-        lines.append(wrapped(f"{name} ({entry.kind}): {params}", "    "))
+        weights = (
+            "weighted" if accepts_sample_weight(entry.build(**entry.defaults)) else "unweighted"
+        )
+        lines.append(wrapped(f"{name} ({entry.kind}, {weights} fits): {params}", "    "))
         lines.append(
             textwrap.fill(
                 entry.description, LINE_WIDTH, initial_indent="    ", subsequent_indent="    "

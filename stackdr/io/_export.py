@@ -133,6 +133,9 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
         frames.append(pd.DataFrame(columns))
     table = pd.concat(frames, ignore_index=True)
     table.attrs["propensity_scale"] = scale
+    # The user's column names behind the sampling_weight and cluster columns.
+    table.attrs["weights_column"] = data.weights_name
+    table.attrs["clusters_column"] = data.clusters_name
     return table
 
 

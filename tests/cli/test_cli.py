@@ -184,6 +184,9 @@ def test_learners_lists_the_catalogue(capsys):
         line = next(line for line in out.splitlines() if line.startswith(name + " "))
         assert entry.kind in line and " ".join(entry.description.split()) in flat
     assert "n_estimators=100" in out
+    # Which learners use sampling weights: k nearest neighbours has no sample_weight.
+    assert "logistic (classifier, weighted fits)" in out
+    assert "knn-regressor (regressor, unweighted fits)" in out
     assert max(len(line) for line in out.splitlines()) <= 100
 
 

@@ -311,6 +311,7 @@ def test_results_json_report_and_exports_carry_the_design(tmp_path):
     table = blended_nuisances(result)
     np.testing.assert_array_equal(table["sampling_weight"], frame.w)
     np.testing.assert_array_equal(table["cluster"], frame.g)
+    assert (table.attrs["weights_column"], table.attrs["clusters_column"]) == ("w", "g")
     # [construction] Refits get the sampling weights: the weighted linear fit on the treated
     # equals numpy's weighted least squares.
     models = blended_models(
@@ -322,3 +323,22 @@ def test_results_json_report_and_exports_carry_the_design(tmp_path):
     coef = np.linalg.lstsq(X * root[:, None], frame.y[treated] * root, rcond=None)[0]
     linear = models["mu1"].estimators_["linear"]
     np.testing.assert_allclose([linear.intercept_, *linear.coef_], coef, rtol=1e-8)
+
+
+def test_command_line_and_config_take_weights_and_clusters(tmp_path, capsys):
+    import json
+
+    from stackdr.cli import main
+    from tests.helpers import QUICK_NO_BOOTSTRAP
+
+    _sample_with_clusters(8, clusters=30, n=300).to_csv(tmp_path / "data.csv", index=False)
+    config = QUICK_NO_BOOTSTRAP.replace("[settings]", '[settings]\nweights = "w"')
+    (tmp_path / "design.toml").write_text(config)
+    args = ["estimate", tmp_path / "data.csv", "--treatment", "a", "--outcome", "y"]
+    args += ["--target", "ate", "--out", tmp_path / "fit", "--config", tmp_path / "design.toml"]
+    assert main([str(a) for a in [*args, "--clusters", "g"]]) == 0
+    out = capsys.readouterr().out
+    assert "sampling weights column 'w'" in out and "clusters column 'g': 30 clusters" in out
+    saved = json.loads((tmp_path / "fit" / "results.json").read_text())
+    assert saved["data"]["weights"]["column"] == "w" and saved["data"]["clusters"]["count"] == 30
+    assert "w" not in saved["data"]["covariates"] and "g" not in saved["data"]["covariates"]
