@@ -169,6 +169,28 @@ def fit_frame(build, **kw) -> Callable[[], object]:
     return lambda: fit(build(), **kw)
 
 
+def fit_design(build, **roles) -> Callable[[], object]:
+    """A fast fit of the toy frame with sampling weights and/or clusters (column names)."""
+
+    def run():
+        estimator = BlendEstimator(
+            "ate", propensity_library(), outcome_library(), folds=3, bootstrap=0
+        )
+        return estimator.fit(build(), "a", "y", ["x1", "x2", "x3"], **roles)
+
+    return run
+
+
+def design_frame(**columns) -> Callable[[], pd.DataFrame]:
+    """The toy frame with a weights column ``w`` (1 to 2) and a cluster column ``g`` (40
+    clusters), then ``columns`` replaced."""
+    defaults = {
+        "w": lambda f: 1.0 + (np.arange(len(f)) % 3) / 2,
+        "g": lambda f: np.arange(len(f)) % 40,
+    }
+    return changed(**{**defaults, **columns})
+
+
 FAULTS = [
     Fault(
         "missing value in the treatment",
@@ -437,6 +459,65 @@ FAULTS = [
         "clip must be >= 0 and < 0.5, got 0.7",
         InputError,
         lambda: fit(clip=0.7),
+    ),
+    Fault(
+        "sampling weights column not found",
+        "error",
+        "weights column 'wt' not found",
+        InputError,
+        fit_design(design_frame(), weights="wt"),
+    ),
+    Fault(
+        "negative sampling weight",
+        "error",
+        "weights column 'w' has 1 negative values",
+        InputError,
+        fit_design(design_frame(w=lambda f: np.where(f.index == 2, -1.0, 1.0)), weights="w"),
+    ),
+    Fault(
+        "missing or infinite sampling weight",
+        "error",
+        "weights column 'w' has 2 missing or infinite values",
+        InputError,
+        fit_design(
+            design_frame(w=lambda f: np.select([f.index == 1, f.index == 4], [np.nan, np.inf], 1)),
+            weights="w",
+        ),
+    ),
+    Fault(
+        "text in the sampling weights",
+        "error",
+        "weights column 'w' is not numeric",
+        InputError,
+        fit_design(design_frame(w=lambda f: np.where(f.index == 0, "high", "1")), weights="w"),
+    ),
+    Fault(
+        "sampling weights all zero",
+        "error",
+        "weights column 'w' is zero in every row",
+        InputError,
+        fit_design(design_frame(w=0.0), weights="w"),
+    ),
+    Fault(
+        "a single cluster",
+        "error",
+        "clusters column 'g' has a single cluster",
+        InputError,
+        fit_design(design_frame(g="ward 1"), clusters="g"),
+    ),
+    Fault(
+        "fewer clusters than folds",
+        "error",
+        "clusters column 'g' has 2 clusters, fewer than the 3 folds",
+        InputError,
+        fit_design(design_frame(g=lambda f: np.arange(len(f)) % 2), clusters="g"),
+    ),
+    Fault(
+        "fewer than 30 clusters",
+        "runs with a warning",
+        "clusters column 'g' has only 6 clusters",
+        UserWarning,
+        fit_design(design_frame(g=lambda f: np.arange(len(f)) % 6), clusters="g"),
     ),
     Fault(
         "negative bootstrap count",

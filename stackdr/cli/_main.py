@@ -90,8 +90,9 @@ def _print_written(paths: dict) -> None:
         print(f"  {label:<10} {path}")
 
 
-def provenance_footer(results_provenance: dict) -> str:
-    """The printed provenance: data file and hash, time, versions, within 100 characters."""
+def provenance_footer(results_provenance: dict, sampling: dict | None = None) -> str:
+    """The printed provenance: data file and hash, sampling weights and clusters (when used),
+    time, versions, within 100 characters."""
     prov = results_provenance
     source = prov["input"]
     versions = ", ".join(f"{k} {v}" for k, v in prov["versions"].items() if v is not None)
@@ -100,6 +101,19 @@ def provenance_footer(results_provenance: dict) -> str:
         lines.append(
             f"  data {source['path']} ({source['rows']} rows x {source['columns']} columns), "
             f"SHA-256 {source['sha256']}"
+        )
+    weights = (sampling or {}).get("weights")
+    clusters = (sampling or {}).get("clusters")
+    if weights is not None:
+        lines.append(
+            f"  sampling weights column {weights['column']!r}: total {weights['total']:.6g}, "
+            f"range {weights['min']:.4g} to {weights['max']:.4g}, Kish effective sample size "
+            f"{weights['kish_effective_sample_size']:.1f}"
+        )
+    if clusters is not None:
+        lines.append(
+            f"  clusters column {clusters['column']!r}: {clusters['count']} clusters of "
+            f"{clusters['smallest']} to {clusters['largest']} rows"
         )
     lines.append(f"  created {prov['created_utc']} (UTC)")
     lines.append(
@@ -162,7 +176,14 @@ def _run_estimate(args: argparse.Namespace) -> int:
         outcome_learners=config.library("outcome") if config else None,
         **kwargs,
     )
-    result = estimator.fit(frame, treatment, values["outcome"], values.get("covariates"))
+    result = estimator.fit(
+        frame,
+        treatment,
+        values["outcome"],
+        values.get("covariates"),
+        weights=values.get("weights"),
+        clusters=values.get("clusters"),
+    )
     run = {
         "command": "estimate",
         "data_file": relative_path(values["data"], out_dir),
@@ -180,7 +201,7 @@ def _run_estimate(args: argparse.Namespace) -> int:
     )
     print(result.summary(**presentation))
     print()
-    print(provenance_footer(prov))
+    print(provenance_footer(prov, result.sampling))
     print()
     _print_written(paths)
     return 0
@@ -216,14 +237,18 @@ def _run_report(args: argparse.Namespace) -> int:
 
 
 def learner_table() -> str:
-    """The learner catalogue as text within 100 characters a line: name, kind and parameters
-    (defaults), then the description on indented lines."""
-    from stackdr.estimation import CATALOGUE
+    """The learner catalogue as text within 100 characters a line: name, kind, whether its fit
+    uses sampling weights (``--weights``), parameters (defaults), then the description on
+    indented lines."""
+    from stackdr.estimation import CATALOGUE, accepts_sample_weight
 
     lines = []
     for name, entry in CATALOGUE.items():
         params = ", ".join(f"{k}={v!r}" for k, v in entry.defaults.items()) or "no parameters"
-        lines.append(wrapped(f"{name} ({entry.kind}): {params}", "    "))
+        weights = (
+            "weighted" if accepts_sample_weight(entry.build(**entry.defaults)) else "unweighted"
+        )
+        lines.append(wrapped(f"{name} ({entry.kind}, {weights} fits): {params}", "    "))
         lines.append(
             textwrap.fill(
                 entry.description, LINE_WIDTH, initial_indent="    ", subsequent_indent="    "

@@ -2,6 +2,15 @@
 
 Psi[k, j] is the cross-fitted DR estimate with propensity learner k and outcome learner j. It is
 computed with matrix products over rows, never as an n x K1 x K2 array.
+
+Sampling weights and clusters (issue 14). :class:`PairInputs` may carry sampling weights ``s``
+and integer cluster codes. Every weighted sum over rows then carries ``s`` (times any bootstrap
+row weights), so each estimate is the weighted-population one, ``sum s H / sum s d``. Standard
+errors are the linearisation (sandwich) form for sampling weights,
+``sqrt(sum_i (s_i IF_i)^2) / sum_i s_i``, which is the HC0 standard error of weighted least
+squares; with clusters the scores ``s_i IF_i`` are summed within clusters first and the variance
+is multiplied by G / (G - 1) (Cameron & Miller 2015, J. Human Resources 50(2):317-372, common
+practice). Without weights and clusters the arithmetic is exactly the unweighted one.
 """
 
 from __future__ import annotations
@@ -36,6 +45,8 @@ class PairInputs:
     pi: np.ndarray
     transforms: list
     propensity_kind: str
+    sample_weight: np.ndarray | None = None
+    cluster_codes: np.ndarray | None = None
 
     @property
     def n(self) -> int:
@@ -47,9 +58,17 @@ class PairInputs:
 
 
 def pair_inputs(
-    target: Target, crossfit, A: np.ndarray, Y: np.ndarray, repeat: int = 0
+    target: Target,
+    crossfit,
+    A: np.ndarray,
+    Y: np.ndarray,
+    repeat: int = 0,
+    *,
+    sample_weight: np.ndarray | None = None,
+    cluster_codes: np.ndarray | None = None,
 ) -> PairInputs:
-    """Assemble the row-level ingredients for repetition ``repeat`` of a cross-fit."""
+    """Assemble the row-level ingredients for repetition ``repeat`` of a cross-fit, with
+    optional sampling weights and cluster codes (0..G-1) carried to every sum and SE."""
     rows = target.row_functions(A, Y)
     pi = crossfit.propensity[repeat]
     P, B = [], []
@@ -74,6 +93,8 @@ def pair_inputs(
         pi,
         [c.weight_transform for c in target.components],
         crossfit.propensity_kind,
+        None if sample_weight is None else np.asarray(sample_weight, dtype=float),
+        None if cluster_codes is None else np.asarray(cluster_codes, dtype=np.int64),
     )
 
 
@@ -120,7 +141,14 @@ def with_stacked_propensity(inp: PairInputs, weights: np.ndarray) -> PairInputs:
 
 
 def _weights(inp: PairInputs, row_weights: np.ndarray | None) -> np.ndarray:
-    return np.ones(inp.n) if row_weights is None else np.asarray(row_weights, dtype=float)
+    """Row weights of a sum: the given (bootstrap) weights times the sampling weights."""
+    sampling = inp.sample_weight
+    if row_weights is None:
+        return np.ones(inp.n) if sampling is None else sampling
+    w = np.asarray(row_weights, dtype=float)
+    if sampling is None:
+        return w
+    return w * (sampling if w.ndim == 1 else sampling[:, None])
 
 
 def pair_table(inp: PairInputs, row_weights: np.ndarray | None = None) -> np.ndarray:
@@ -251,7 +279,7 @@ def lattice_phi(
     numpy.ndarray, shape (c, m, K2)
         Agrees with :func:`phi` for each column of ``row_weights`` up to round-off.
     """
-    W = np.asarray(row_weights, dtype=float)
+    W = _weights(inp, row_weights)
     points = np.atleast_2d(np.asarray(points, dtype=float))
     n, c = W.shape
     K2 = inp.shape[1]
@@ -290,7 +318,7 @@ class WeightedPhi:
     """
 
     def __init__(self, inp: PairInputs, blend: str, row_weights, known=None):
-        w = np.asarray(row_weights, dtype=float)
+        w = _weights(inp, row_weights)
         rows = np.flatnonzero(w)
         self.inp, self.blend = inp, blend
         self.base = _blend_base(inp, blend, rows)
@@ -350,17 +378,62 @@ class RowEstimate:
     influence: np.ndarray
 
 
-def estimate_from_rows(H: np.ndarray, d: np.ndarray) -> RowEstimate:
-    """psi = sum H / sum d, influence (H - psi d) / mean(d), SE = sqrt(mean(IF^2) / n)."""
-    dbar = d.mean()
-    psi = H.sum() / d.sum()
+def influence_standard_error(
+    influence: np.ndarray,
+    sample_weight: np.ndarray | None = None,
+    cluster_codes: np.ndarray | None = None,
+) -> np.ndarray:
+    """SE from influence values (n,) or (n, m), one per column.
+
+    Unweighted and unclustered: ``sqrt(mean(IF^2) / n)``. With sampling weights s:
+    ``sqrt(sum (s IF)^2) / sum s`` (the sandwich form, HC0 for weighted least squares). With
+    cluster codes 0..G-1: the scores ``s IF`` are summed within clusters and the variance
+    ``G / (G - 1) sum_g (sum_{i in g} s_i IF_i)^2 / (sum s)^2`` (the small-sample factor
+    G / (G - 1) of Cameron & Miller 2015, without the (n - 1) / (n - p) regression factor).
+
+    Examples
+    --------
+    >>> infl = np.array([1.0, -1.0, 2.0, -2.0])
+    >>> float(influence_standard_error(infl))
+    0.7905694150420949
+    >>> float(influence_standard_error(infl, cluster_codes=np.array([0, 0, 1, 1])))
+    0.0
+    """
+    if sample_weight is None and cluster_codes is None:
+        return np.sqrt(np.mean(influence**2, axis=0) / influence.shape[0])
+    w = np.ones(influence.shape[0]) if sample_weight is None else sample_weight
+    scores = influence * (w if influence.ndim == 1 else w[:, None])
+    if cluster_codes is None:
+        return np.sqrt(np.sum(scores**2, axis=0)) / w.sum()
+    groups = int(cluster_codes.max()) + 1
+    sums = np.zeros((groups, *scores.shape[1:]))
+    np.add.at(sums, cluster_codes, scores)
+    return np.sqrt(groups / (groups - 1) * np.sum(sums**2, axis=0)) / w.sum()
+
+
+def estimate_from_rows(
+    H: np.ndarray,
+    d: np.ndarray,
+    sample_weight: np.ndarray | None = None,
+    cluster_codes: np.ndarray | None = None,
+) -> RowEstimate:
+    """psi = sum s H / sum s d, influence (H - psi d) / (weighted mean of d), SE by
+    :func:`influence_standard_error` (s = 1 without sampling weights)."""
+    if sample_weight is None:
+        dbar = d.mean()
+        psi = H.sum() / d.sum()
+    else:
+        dbar = (sample_weight @ d) / sample_weight.sum()
+        psi = (sample_weight @ H) / (sample_weight @ d)
     infl = (H - psi * d) / dbar
-    return RowEstimate(float(psi), float(np.sqrt(np.mean(infl**2) / H.shape[0])), infl)
+    se = influence_standard_error(infl, sample_weight, cluster_codes)
+    return RowEstimate(float(psi), float(se), infl)
 
 
 def blend_estimate(inp: PairInputs, alpha, beta, blend: str = "riesz") -> RowEstimate:
     """DR estimate, influence function and SE at blended nuisances."""
-    return estimate_from_rows(row_contributions(inp, alpha, beta, blend), inp.d)
+    H = row_contributions(inp, alpha, beta, blend)
+    return estimate_from_rows(H, inp.d, inp.sample_weight, inp.cluster_codes)
 
 
 def pair_rows(inp: PairInputs, k: int) -> np.ndarray:
@@ -376,14 +449,17 @@ def pair_standard_errors(inp: PairInputs) -> np.ndarray:
     """Influence-function SE of every pair (K1 x K2); one pass per propensity learner, so memory
     stays at n x K2."""
     K1, K2 = inp.shape
-    n = inp.n
-    dbar = inp.d.mean()
+    w = _weights(inp, None)
+    dbar = (w @ inp.d) / w.sum() if inp.sample_weight is not None else inp.d.mean()
     se = np.empty((K1, K2))
     for k in range(K1):
         H = pair_rows(inp, k)
-        psi = H.sum(axis=0) / inp.d.sum()
+        if inp.sample_weight is None:
+            psi = H.sum(axis=0) / inp.d.sum()
+        else:
+            psi = (w @ H) / (w @ inp.d)
         infl = (H - inp.d[:, None] * psi[None, :]) / dbar
-        se[k] = np.sqrt(np.mean(infl**2, axis=0) / n)
+        se[k] = influence_standard_error(infl, inp.sample_weight, inp.cluster_codes)
     return se
 
 
@@ -396,4 +472,4 @@ def contrast_standard_error(inp: PairInputs, first, second, blend: str = "riesz"
     a = blend_estimate(inp, *first, blend)
     b = blend_estimate(inp, *second, blend)
     diff = a.influence - b.influence
-    return float(np.sqrt(np.mean(diff**2) / inp.n))
+    return float(influence_standard_error(diff, inp.sample_weight, inp.cluster_codes))

@@ -1,17 +1,27 @@
 """Estimation: data validation, learner catalogue, cross-fitting, the estimator and its result."""
 
-from stackdr.estimation._crossfit import CrossFitResult, cross_fit, make_folds
+from stackdr.estimation._analysis import phi_function
+from stackdr.estimation._crossfit import (
+    CrossFitResult,
+    accepts_sample_weight,
+    cross_fit,
+    make_folds,
+    sample_weight_arguments,
+)
 from stackdr.estimation._data import PreparedData, prepare_data
 from stackdr.estimation._diagnostics import (
+    FEW_CLUSTERS,
     OVERLAP_EDGES,
     Diagnostics,
     OverlapHistogram,
     blended_propensity,
     effective_sample_size,
     fit_diagnostics,
+    sampling_sentence,
+    sampling_summary,
     weight_side_values,
 )
-from stackdr.estimation._estimator import BlendEstimator, phi_function
+from stackdr.estimation._estimator import BlendEstimator
 from stackdr.estimation._learners import (
     CATALOGUE,
     check_library,
@@ -75,6 +85,11 @@ __all__ = [
     "threads_per_fit",
     "worker_count",
     "BLEND_MEANINGS",
+    "FEW_CLUSTERS",
+    "accepts_sample_weight",
+    "sample_weight_arguments",
+    "sampling_sentence",
+    "sampling_summary",
     "BOOTSTRAP_KINDS",
     "BlendEstimator",
     "BlendResult",

@@ -12,7 +12,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from joblib import Parallel, delayed
 from sklearn.base import clone
-from sklearn.model_selection import KFold, StratifiedKFold
+from sklearn.model_selection import GroupKFold, KFold, StratifiedGroupKFold, StratifiedKFold
+from sklearn.utils.validation import has_fit_parameter
 
 from stackdr.core import Target
 from stackdr.errors import InputError, LearnerError, PositivityWarning, warn_user
@@ -47,6 +48,9 @@ class CrossFitResult:
         ``"side:learner"`` -> message for learners dropped after failing.
     fit_seconds : dict
         Total fitting seconds per ``"side:learner"``.
+    weighted_fits : dict
+        With sampling weights: ``"side:learner"`` -> whether the learner was fitted with them
+        (False: it takes no ``sample_weight`` and was fitted unweighted). Empty without weights.
     """
 
     fold_labels: np.ndarray
@@ -64,6 +68,7 @@ class CrossFitResult:
     outcome_mode: str
     failures: dict = field(default_factory=dict)
     fit_seconds: dict = field(default_factory=dict)
+    weighted_fits: dict = field(default_factory=dict)
 
     @property
     def repeats(self) -> int:
@@ -77,13 +82,29 @@ def make_folds(
     seed: int = 0,
     stratify: bool = True,
     repeats: int = 1,
+    groups: np.ndarray | None = None,
 ) -> np.ndarray:
     """Fold labels of shape (repeats, n).
 
     ``folds`` is the number of folds (stratified on a binary treatment when ``stratify``), 1 for
     in-sample fitting, or an array of user labels (for example clusters that must stay whole).
+    With ``groups`` (cluster codes 0..G-1) generated folds keep every cluster whole
+    (scikit-learn's ``StratifiedGroupKFold``, stratified on the treatment as far as whole
+    clusters allow, or ``GroupKFold``), and user labels must not split a cluster.
     """
     n = A.shape[0]
+    if groups is not None and not np.isscalar(folds):
+        labels = np.asarray(folds)
+        if labels.shape == (n,):
+            _, codes = np.unique(labels, return_inverse=True)
+            per_cluster = np.zeros((int(groups.max()) + 1, codes.max() + 1), dtype=bool)
+            per_cluster[groups, codes] = True
+            split = np.flatnonzero(per_cluster.sum(axis=1) > 1)
+            if split.size:
+                raise InputError(
+                    f"fold labels split {split.size} clusters across folds; a cluster must lie "
+                    "in one fold"
+                )
     if not np.isscalar(folds):
         labels = np.asarray(folds)
         if labels.shape != (n,):
@@ -101,10 +122,21 @@ def make_folds(
         return np.zeros((1, n), dtype=np.int64)
     if folds > n:
         raise InputError(f"{folds} folds for {n} rows")
+    if groups is not None and folds > int(groups.max()) + 1:
+        raise InputError(f"{folds} folds for {int(groups.max()) + 1} clusters; use fewer folds")
     out = np.empty((repeats, n), dtype=np.int64)
     seeds = np.random.SeedSequence(seed).generate_state(repeats)
     for r in range(repeats):
         rs = int(seeds[r])
+        if groups is not None:
+            grouped = (
+                StratifiedGroupKFold(folds, shuffle=True, random_state=rs)
+                if stratify
+                else GroupKFold(folds, shuffle=True, random_state=rs)
+            )
+            for s, (_, test) in enumerate(grouped.split(np.zeros(n), A, groups)):
+                out[r, test] = s
+            continue
         splitter = (
             StratifiedKFold(folds, shuffle=True, random_state=rs)
             if stratify
@@ -128,21 +160,36 @@ def _predict(est, X, kind):
     return np.asarray(est.predict(X), dtype=float).reshape(-1)
 
 
+def accepts_sample_weight(estimator) -> bool:
+    """Whether ``estimator.fit`` takes ``sample_weight`` (for a Pipeline: its last step, to
+    which the weights are routed; earlier steps such as scalers are fitted unweighted)."""
+    steps = getattr(estimator, "steps", None)
+    return has_fit_parameter(steps[-1][1] if steps else estimator, "sample_weight")
+
+
+def sample_weight_arguments(estimator, sample_weight) -> dict:
+    """Keyword arguments of ``fit`` that pass ``sample_weight`` (none when it is None)."""
+    if sample_weight is None:
+        return {}
+    steps = getattr(estimator, "steps", None)
+    return {f"{steps[-1][0]}__sample_weight" if steps else "sample_weight": sample_weight}
+
+
 def _fit_and_predict(estimator, train: tuple, test_inputs: list, kind, threads: int = 1):
-    """One task: fit a clone on ``train = (X, y)``, predict on each test input, with at most
-    ``threads`` native threads (the cap applies wherever the task runs: this process, a local
-    worker or a dask worker). Errors are returned, not raised, so the caller can name the learner
-    and apply the library's failure policy.
+    """One task: fit a clone on ``train = (X, y, sample_weight or None)``, predict on each test
+    input, with at most ``threads`` native threads (the cap applies wherever the task runs: this
+    process, a local worker or a dask worker). Errors are returned, not raised, so the caller
+    can name the learner and apply the library's failure policy.
 
     The arrays travel inside a tuple and a list on purpose: joblib's dask backend would scatter
     bare arrays to a single worker, and losing that worker would lose the data of the tasks
     still waiting for it; inside the task, they are rerun elsewhere with the task."""
-    X_train, y_train = train
+    X_train, y_train, sample_weight = train
     start = time.perf_counter()
     try:
         with native_threads(threads):
             est = clone(estimator)
-            est.fit(X_train, y_train)
+            est.fit(X_train, y_train, **sample_weight_arguments(est, sample_weight))
             preds = [_predict(est, X, kind) for X in test_inputs]
         for X, p in zip(test_inputs, preds):
             if p.shape != (X.shape[0],):
@@ -237,7 +284,22 @@ def cross_fit(
     n = data.n
     binary = bool(np.isin(A, (0.0, 1.0)).all())
     prop_kind = "classifier" if binary else "regressor"
-    labels = make_folds(A, folds, seed=seed, stratify=binary, repeats=repeats)
+    labels = make_folds(
+        A, folds, seed=seed, stratify=binary, repeats=repeats, groups=data.cluster_codes
+    )
+    weights = data.weights
+    weighted = {}
+    if weights is not None:
+        for side, library in (("propensity", propensity_library), ("outcome", outcome_library)):
+            for name, est in library.items():
+                weighted[f"{side}:{name}"] = accepts_sample_weight(est)
+        unweighted = [key.replace(":", " learner ", 1) for key, ok in weighted.items() if not ok]
+        if unweighted:
+            warn_user(
+                f"learners fitted without the sampling weights (their fit takes no "
+                f"sample_weight): {', '.join(unweighted)}; the estimate, its SE and the "
+                "stacking still use the weights"
+            )
     in_sample = bool(np.isscalar(folds) and folds == 1)
     needed = target.outcome_needed(A)
     heads = target.outcome_heads
@@ -260,9 +322,10 @@ def cross_fit(
             test = np.arange(n) if in_sample else np.flatnonzero(labels[r] == s)
             train = np.arange(n) if in_sample else np.flatnonzero(labels[r] != s)
             for name, est in propensity_library.items():
+                sw = weights[train] if weighted.get(f"propensity:{name}") else None
                 tasks.append(
                     delayed(_fit_and_predict)(
-                        est, (X[train], A[train]), [X[test]], prop_kind, per_fit
+                        est, (X[train], A[train], sw), [X[test]], prop_kind, per_fit
                     )
                 )
                 keys.append(("propensity", name, r, test, None))
@@ -271,9 +334,10 @@ def cross_fit(
                 for fit_rows, inputs, unit_heads in _outcome_units(
                     X, A, train, test, needed, heads, outcome_mode
                 ):
+                    sw = weights[fit_rows] if weighted.get(f"outcome:{name}") else None
                     tasks.append(
                         delayed(_fit_and_predict)(
-                            est, (inputs[0], Y[fit_rows]), inputs[1], "regressor", per_fit
+                            est, (inputs[0], Y[fit_rows], sw), inputs[1], "regressor", per_fit
                         )
                     )
                     keys.append(("outcome", name, r, test, unit_heads))
@@ -349,6 +413,7 @@ def cross_fit(
         outcome_mode=outcome_mode,
         failures=failures,
         fit_seconds=seconds,
+        weighted_fits={k: v for k, v in weighted.items() if k not in failures},
     )
 
 

@@ -14,6 +14,7 @@ import pandas as pd
 
 from stackdr.core import Target
 from stackdr.errors import InputError, warn_user
+from stackdr.estimation._diagnostics import FEW_CLUSTERS
 
 log = logging.getLogger("stackdr")
 
@@ -38,6 +39,12 @@ class PreparedData:
     covariate_names, treatment_name, outcome_name : names for tables and files.
     notes : list of str
         What the validation changed (encodings), for logs and reports.
+    weights : ndarray (n,) or None
+        Sampling weights (finite, non-negative, positive total), or None.
+    cluster_codes : ndarray (n,) of int or None
+        Cluster of each row as codes 0..G-1 (in order of the sorted labels), or None.
+    weights_name, clusters_name : str or None
+        The columns they came from.
     """
 
     X: np.ndarray
@@ -47,13 +54,26 @@ class PreparedData:
     treatment_name: str
     outcome_name: str
     notes: list[str] = field(default_factory=list)
+    weights: np.ndarray | None = None
+    cluster_codes: np.ndarray | None = None
+    weights_name: str | None = None
+    clusters_name: str | None = None
 
     @property
     def n(self) -> int:
         return int(self.A.shape[0])
 
-    def take(self, rows: np.ndarray) -> PreparedData:
-        """Rows ``rows`` (indices) of the data, e.g. for a resample."""
+    @property
+    def clusters(self) -> int | None:
+        """G, the number of clusters (None without clusters)."""
+        return None if self.cluster_codes is None else int(self.cluster_codes.max()) + 1
+
+    def take(self, rows: np.ndarray, cluster_codes: np.ndarray | None = None) -> PreparedData:
+        """Rows ``rows`` (indices) of the data, e.g. for a resample; sampling weights follow
+        their rows. ``cluster_codes`` gives the resample's clusters (a cluster drawn twice is
+        two clusters); by default the rows keep theirs."""
+        if cluster_codes is None and self.cluster_codes is not None:
+            cluster_codes = np.unique(self.cluster_codes[rows], return_inverse=True)[1]
         return PreparedData(
             self.X[rows],
             self.A[rows],
@@ -62,6 +82,10 @@ class PreparedData:
             self.treatment_name,
             self.outcome_name,
             self.notes,
+            None if self.weights is None else self.weights[rows],
+            cluster_codes,
+            self.weights_name,
+            self.clusters_name,
         )
 
 
@@ -150,6 +174,8 @@ def prepare_data(
     *,
     target: Target,
     folds: int = 5,
+    weights=None,
+    clusters=None,
 ) -> PreparedData:
     """Validate user data and return clean arrays.
 
@@ -166,6 +192,11 @@ def prepare_data(
         Decides whether the treatment must be 0/1 and which rows need an outcome.
     folds : int
         Number of cross-fitting folds; each treatment arm needs at least this many rows.
+    weights, clusters : str or array-like, optional
+        Sampling weights and cluster labels: column names (DataFrame input; those columns are
+        then not covariates) or arrays of length n. Weights must be numeric, finite,
+        non-negative and not all zero; clusters any labels without missing values, at least two
+        distinct ones.
 
     Returns
     -------
@@ -205,14 +236,16 @@ def prepare_data(
                 raise InputError(f"{role} column {col!r} not found; columns are {cols}")
         if treatment == outcome:
             raise InputError(f"treatment and outcome are the same column {treatment!r}")
+        design = _design_columns(data, treatment, outcome, weights, clusters)
+        roles = (treatment, outcome, *design)
         if covariates is None:
-            covariates = [c for c in data.columns if c not in (treatment, outcome)]
+            covariates = [c for c in data.columns if c not in roles]
         else:
             covariates = list(covariates)
             unknown = [c for c in covariates if c not in data.columns]
             if unknown:
                 raise InputError(f"covariate columns not found: {', '.join(map(repr, unknown))}")
-            clash = [c for c in covariates if c in (treatment, outcome)]
+            clash = [c for c in covariates if c in roles]
             if clash:
                 raise InputError(f"column {clash[0]!r} is given both as covariate and as role")
         if not covariates:
@@ -220,6 +253,9 @@ def prepare_data(
         a_raw, y_raw = data[treatment], data[outcome]
         x_frame = data[covariates].copy()
         t_name, y_name = treatment, outcome
+        w_raw = None if weights is None else data[weights]
+        g_raw = None if clusters is None else data[clusters]
+        w_name, g_name = weights, clusters
     else:
         x = np.asarray(data)
         if x.ndim == 1:
@@ -239,6 +275,14 @@ def prepare_data(
                     f"length mismatch: {role} has {arr.shape[0]} rows, covariates {x.shape[0]}"
                 )
         t_name, y_name = "treatment", "outcome"
+        w_raw, g_raw = weights, clusters
+        w_name = None if weights is None else "weights"
+        g_name = None if clusters is None else "clusters"
+        for role, arr in (("weights", w_raw), ("clusters", g_raw)):
+            if arr is not None and np.shape(arr)[0] != x.shape[0]:
+                raise InputError(
+                    f"length mismatch: {role} has {np.shape(arr)[0]} rows, covariates {x.shape[0]}"
+                )
 
     n = len(x_frame)
     if n == 0:
@@ -267,8 +311,95 @@ def prepare_data(
             UserWarning,
         )
     Y = np.where(needed, Y, 0.0)
+    w = None if w_raw is None else sampling_weights(w_raw, str(w_name), A, t_name, target)
+    codes = None if g_raw is None else cluster_codes(g_raw, str(g_name), folds)
     X, cov_names = _covariate_frame(x_frame, notes)
-    return PreparedData(X, A, Y, cov_names, str(t_name), str(y_name), notes)
+    return PreparedData(
+        X,
+        A,
+        Y,
+        cov_names,
+        str(t_name),
+        str(y_name),
+        notes,
+        w,
+        codes,
+        None if w_name is None else str(w_name),
+        None if g_name is None else str(g_name),
+    )
+
+
+def _design_columns(data: pd.DataFrame, treatment, outcome, weights, clusters) -> list:
+    """The weights and clusters columns, checked to exist and to differ from the other roles."""
+    cols = [str(c) for c in data.columns]
+    named = []
+    for role, col in (("weights", weights), ("clusters", clusters)):
+        if col is None:
+            continue
+        if not isinstance(col, str):
+            raise InputError(f"{role} must be a column name when data is a DataFrame")
+        if col not in data.columns:
+            raise InputError(f"{role} column {col!r} not found; columns are {cols}")
+        if col in (treatment, outcome, *named):
+            raise InputError(f"{role} column {col!r} is already used as another role")
+        named.append(col)
+    return named
+
+
+def sampling_weights(values, name: str, A: np.ndarray, treatment: str, target: Target):
+    """Validated sampling weights: numeric, finite, non-negative, with positive total (and
+    positive total in each arm for a binary treatment)."""
+    series = pd.Series(values.to_numpy() if isinstance(values, pd.Series) else np.ravel(values))
+    if series.dtype == bool or not pd.api.types.is_numeric_dtype(series):
+        shown = _describe_values(series.to_numpy())
+        raise InputError(f"weights column {name!r} is not numeric; values found include {shown}")
+    w = series.to_numpy(dtype=float)
+    bad = ~np.isfinite(w)
+    if bad.any():
+        raise InputError(
+            f"weights column {name!r} has {int(bad.sum())} missing or infinite values "
+            f"(first at row {int(np.flatnonzero(bad)[0])})"
+        )
+    if (w < 0).any():
+        raise InputError(
+            f"weights column {name!r} has {int((w < 0).sum())} negative values "
+            f"(smallest {w.min():g}); sampling weights must be >= 0"
+        )
+    if w.sum() <= 0:
+        raise InputError(f"weights column {name!r} is zero in every row")
+    if target.binary_treatment:
+        for arm in (0.0, 1.0):
+            if w[A == arm].sum() <= 0:
+                raise InputError(
+                    f"weights column {name!r} is zero in every row with {treatment} = {int(arm)}"
+                )
+    return w
+
+
+def cluster_codes(values, name: str, folds: int) -> np.ndarray:
+    """Cluster labels as codes 0..G-1; at least two clusters, and at least ``folds``."""
+    series = pd.Series(values.to_numpy() if isinstance(values, pd.Series) else np.ravel(values))
+    missing = int(series.isna().sum())
+    if missing:
+        raise InputError(f"clusters column {name!r} has {missing} missing values")
+    labels = series.astype(str) if series.dtype == object else series
+    codes, uniques = pd.factorize(labels, sort=True)
+    if len(uniques) < 2:
+        raise InputError(
+            f"clusters column {name!r} has a single cluster; cluster-robust inference needs "
+            "at least two"
+        )
+    if folds > 1 and len(uniques) < folds:
+        raise InputError(
+            f"clusters column {name!r} has {len(uniques)} clusters, fewer than the {folds} folds"
+        )
+    if len(uniques) < FEW_CLUSTERS:
+        warn_user(
+            f"clusters column {name!r} has only {len(uniques)} clusters; cluster-robust standard "
+            f"errors and the cluster bootstrap are unreliable with fewer than {FEW_CLUSTERS}",
+            UserWarning,
+        )
+    return codes.astype(np.int64)
 
 
 def _treatment_vector(values, name: str, target: Target, folds: int) -> np.ndarray:

@@ -17,6 +17,9 @@ from stackdr.core import blended_weight_side
 
 # Fixed bins for the overlap histogram so that reports of different fits are comparable.
 OVERLAP_EDGES = np.linspace(0.0, 1.0, 41)
+# Below this many clusters cluster-robust SEs are known to be too small (common practice;
+# Cameron & Miller 2015, J. Human Resources 50(2), section VI).
+FEW_CLUSTERS = 30
 # Arm name and treatment code, in the order the report shows them.
 ARM_CODES = {"treated": 1, "control": 0}
 
@@ -219,3 +222,84 @@ def fit_diagnostics(
             },
         ),
     )
+
+
+def sampling_summary(data, weighted_fits: dict | None = None) -> dict:
+    """The sampling design of a fit: sampling weights and clusters, as plain values.
+
+    Parameters
+    ----------
+    data : PreparedData
+        Validated data (its ``weights``, ``cluster_codes`` and their column names).
+    weighted_fits : dict, optional
+        ``"side:learner"`` -> whether that learner was fitted with the sampling weights.
+
+    Returns
+    -------
+    dict
+        ``weights``: None, or the column, total, smallest and largest weight, rows with weight
+        zero, Kish's effective sample size and the learners fitted without the weights;
+        ``clusters``: None, or the column, number of clusters G, smallest, median and largest
+        cluster size, and whether G is below 30 (:data:`FEW_CLUSTERS`).
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace
+    >>> data = SimpleNamespace(weights=np.array([1.0, 1.0, 2.0]), weights_name="w",
+    ...                        cluster_codes=None, clusters_name=None)
+    >>> sampling_summary(data)["weights"]["kish_effective_sample_size"]
+    2.6666666666666665
+    """
+    out = {"weights": None, "clusters": None}
+    if data.weights is not None:
+        w = data.weights
+        fits = weighted_fits or {}
+        out["weights"] = {
+            "column": data.weights_name,
+            "total": float(w.sum()),
+            "min": float(w.min()),
+            "max": float(w.max()),
+            "zero_rows": int((w == 0).sum()),
+            "kish_effective_sample_size": effective_sample_size(w),
+            "unweighted_learners": [key for key, ok in fits.items() if not ok],
+        }
+    if data.cluster_codes is not None:
+        sizes = np.bincount(data.cluster_codes)
+        out["clusters"] = {
+            "column": data.clusters_name,
+            "count": int(sizes.size),
+            "smallest": int(sizes.min()),
+            "median_size": float(np.median(sizes)),
+            "largest": int(sizes.max()),
+            "few": bool(sizes.size < FEW_CLUSTERS),
+        }
+    return out
+
+
+def sampling_sentence(sampling: dict, n: int) -> str:
+    """The sampling design in words (empty without weights and clusters), for the printed
+    summary and the report.
+
+    Examples
+    --------
+    >>> clusters = {"column": "school", "count": 12, "smallest": 20, "largest": 41, "few": True}
+    >>> print(sampling_sentence({"weights": None, "clusters": clusters}, 300))  # doctest: +ELLIPSIS
+    Clusters 'school': 12 (20 to 41 rows each); ... fewer than 30 clusters: the SEs are unreliable.
+    """
+    parts = []
+    weights, clusters = sampling["weights"], sampling["clusters"]
+    if weights is not None:
+        ess = weights["kish_effective_sample_size"]
+        parts.append(
+            f"Sampling weights {weights['column']!r}: estimates are for the weighted "
+            f"population; Kish effective sample size {ess:.1f} of {n} rows."
+        )
+    if clusters is not None:
+        text = (
+            f"Clusters {clusters['column']!r}: {clusters['count']} ({clusters['smallest']} to "
+            f"{clusters['largest']} rows each); folds keep them whole, SEs are cluster-robust "
+            "and the bootstrap draws clusters"
+        )
+        few = f"; fewer than {FEW_CLUSTERS} clusters: the SEs are unreliable."
+        parts.append(text + (few if clusters["few"] else "."))
+    return " ".join(parts)

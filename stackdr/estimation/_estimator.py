@@ -17,19 +17,21 @@ from sklearn.base import BaseEstimator, clone
 from stackdr.core import (
     Target,
     blend_estimate,
-    contrast_standard_error,
     get_target,
-    log_losses,
-    logloss_stack,
-    nnls_stack,
     pair_inputs,
     pair_standard_errors,
     pair_table,
-    phi,
-    squared_error_losses,
     with_stacked_propensity,
 )
 from stackdr.errors import InputError
+from stackdr.estimation._analysis import (
+    combine_repeats,
+    noise_floor_function,
+    phi_function,
+    prediction_losses_and_stacking,
+    search_table,
+    stacked_propensity_loss,
+)
 from stackdr.estimation._crossfit import CrossFitResult, cross_fit
 from stackdr.estimation._data import PreparedData, prepare_data
 from stackdr.estimation._learners import (
@@ -242,7 +244,9 @@ class BlendEstimator(BaseEstimator):
         validate_params(self.get_params(deep=False))
         check_cluster(self.backend, self.cluster)
 
-    def fit(self, data, treatment=None, outcome=None, covariates=None) -> BlendResult:
+    def fit(
+        self, data, treatment=None, outcome=None, covariates=None, *, weights=None, clusters=None
+    ) -> BlendResult:
         """Validate data, cross-fit both libraries, search weights and estimate.
 
         Parameters
@@ -250,19 +254,34 @@ class BlendEstimator(BaseEstimator):
         data : DataFrame or array (n, p)
         treatment, outcome : column names (DataFrame) or arrays
         covariates : list of column names, optional (default: all other columns)
+        weights : column name or array, optional
+            Sampling weights: the estimand is the weighted-population one. Learners that take
+            ``sample_weight`` are fitted weighted; every sum, loss, stacking fit, SE and
+            bootstrap replicate carries the weights.
+        clusters : column name or array, optional
+            Cluster labels: folds keep clusters whole, SEs are cluster-robust (factor
+            G / (G - 1)), the reweighting bootstrap draws one weight per cluster and the refit
+            bootstrap resamples clusters.
         """
         self._validate_params()
         # The process's own native work (stacking, bootstrap matrix products) and every learner
         # fit run under the thread budget (threads_per_fit).
         with native_threads(threads_per_fit(self.n_jobs, self.threads)):
-            return self._fit(data, treatment, outcome, covariates)
+            return self._fit(data, treatment, outcome, covariates, weights, clusters)
 
-    def _fit(self, data, treatment, outcome, covariates) -> BlendResult:
+    def _fit(self, data, treatment, outcome, covariates, weights, clusters) -> BlendResult:
         start = time.perf_counter()
         target = get_target(self.target)
         n_folds = self.folds if np.isscalar(self.folds) else 2
         prepared = prepare_data(
-            data, treatment, outcome, covariates, target=target, folds=int(n_folds)
+            data,
+            treatment,
+            outcome,
+            covariates,
+            target=target,
+            folds=int(n_folds),
+            weights=weights,
+            clusters=clusters,
         )
         # --- backend/cluster: learner fits run where the backend setting says.
         with parallel_backend(self.backend, self.cluster, self.n_jobs or 1):
@@ -329,7 +348,16 @@ class BlendEstimator(BaseEstimator):
     ) -> Analysis:
         """Pair tables, prediction losses, stacking weights and direction masks."""
         base_inputs = [
-            pair_inputs(target, cf, prepared.A, prepared.Y, r) for r in range(cf.repeats)
+            pair_inputs(
+                target,
+                cf,
+                prepared.A,
+                prepared.Y,
+                r,
+                sample_weight=prepared.weights,
+                cluster_codes=prepared.cluster_codes,
+            )
+            for r in range(cf.repeats)
         ]
         losses, stack_alpha, stack_beta = prediction_losses_and_stacking(prepared, cf)
         names = list(cf.propensity_names)
@@ -356,8 +384,8 @@ class BlendEstimator(BaseEstimator):
                 # The stacked propensity is credible by the same rule, against the best learner.
                 loss = stacked_propensity_loss(prepared, cf, stack_alpha)
                 prop_mask = np.append(prop_mask, self._direction_mask(losses["propensity"], loss))
-        Psi = _search_table(pair_table, base_inputs, inputs, stacked)
-        pair_se = _search_table(pair_standard_errors, base_inputs, inputs, stacked)
+        Psi = search_table(pair_table, base_inputs, inputs, stacked)
+        pair_se = search_table(pair_standard_errors, base_inputs, inputs, stacked)
         masks = (prop_mask, self._direction_mask(losses["outcome"]))
         return Analysis(
             inputs,
@@ -495,99 +523,3 @@ class BlendEstimator(BaseEstimator):
         return EstimatorRow(
             name, kind, est, se, weights, np.asarray(beta), risk, self.level, blend=blend
         )
-
-
-def combine_repeats(estimates, ses) -> tuple[float, float]:
-    """Median over repeated splits, with the spread-adjusted SE of Chernozhukov et al. (2018)."""
-    est = np.asarray(estimates, dtype=float)
-    ses = np.asarray(ses, dtype=float)
-    med = float(np.median(est))
-    return med, float(np.median(np.sqrt(ses**2 + (est - med) ** 2)))
-
-
-def phi_function(inputs: list, blend: str):
-    def phi_fn(alphas: np.ndarray) -> np.ndarray:
-        return np.median(np.stack([phi(inp, alphas, blend) for inp in inputs]), axis=0)
-
-    return phi_fn
-
-
-def prediction_losses_and_stacking(prepared: PreparedData, cf: CrossFitResult):
-    """Per-learner out-of-fold losses and prediction-loss stacking weights (super learner,
-    van der Laan, Polley & Hubbard 2007), pooled over repeated splits."""
-    rows = cf.observed_mask
-    R = cf.repeats
-    obs = cf.observed[:, rows, :].reshape(-1, len(cf.outcome_names))
-    y = np.tile(prepared.Y[rows], R)
-    out_loss = squared_error_losses(obs, y)
-    beta = nnls_stack(obs, y).weights
-    probs = cf.propensity.reshape(-1, len(cf.propensity_names))
-    a = np.tile(prepared.A, R)
-    if cf.propensity_kind == "classifier":
-        prop_loss = log_losses(probs, a)
-        alpha = logloss_stack(probs, a).weights
-    else:
-        prop_loss = squared_error_losses(probs, a)
-        alpha = nnls_stack(probs, a).weights
-    return {"propensity": prop_loss, "outcome": out_loss}, alpha, beta
-
-
-def _search_table(table, base_inputs: list, inputs: list, stacked: bool) -> np.ndarray:
-    """A per-pair table (``table(inputs)``, K x K2) over the search's propensity columns, median
-    over repeated splits. The learners' rows are computed from their own inputs, so they are the
-    same numbers whether or not the stacked propensity's row is appended."""
-    values = [table(inp) for inp in base_inputs]
-    if stacked:
-        values = [np.vstack([v, table(inp)[-1:]]) for v, inp in zip(values, inputs)]
-    return np.median(np.stack(values), axis=0)
-
-
-def stacked_propensity_loss(
-    prepared: PreparedData, cf: CrossFitResult, stack_alpha: np.ndarray
-) -> float:
-    """Out-of-fold loss of the prediction-loss stacked propensity, pooled over repeated
-    splits like the learners' losses."""
-    probs = cf.propensity.reshape(-1, len(cf.propensity_names)) @ stack_alpha
-    a = np.tile(prepared.A, cf.repeats)
-    losses = log_losses if cf.propensity_kind == "classifier" else squared_error_losses
-    return float(losses(probs[:, None], a)[0])
-
-
-# Values within this fraction of the pair table's spread count as tied for the largest or the
-# smallest: about the accuracy of the LP optimum, so round-off never decides which contrast sets
-# the noise floor.
-_TIE_FRACTION = 1e-9
-
-
-def noise_floor_function(an: Analysis, settings: SearchSettings):
-    """tau(side, weights) = c x SE of the pair contrast that attains the sensitivity range at
-    those weights (first repetition's rows). When several learners tie for the largest or the
-    smallest value (a zero range ties them all), the largest SE among the tied contrasts is
-    used, so the result depends neither on learner order nor on round-off."""
-    inp = an.inputs[0]
-    K1, K2 = an.Psi.shape
-    blend = settings.blend
-    phi_fn = phi_function(an.inputs, blend)
-    tie = _TIE_FRACTION * float(np.ptp(an.Psi))
-
-    def extreme_pairs(values, mask):
-        idx = np.arange(values.size) if mask is None else np.flatnonzero(mask)
-        sub = values[idx]
-        top, bottom = idx[sub >= sub.max() - tie], idx[sub <= sub.min() + tie]
-        return {tuple(sorted((h, l))) for h in top for l in bottom if h != l}
-
-    def tolerance(side: str, weights: np.ndarray) -> float:
-        weights = np.asarray(weights, dtype=float)
-        if side == "propensity":
-            pairs = extreme_pairs(phi_fn(weights[None])[0], an.masks[1])
-            ends = [((weights, np.eye(K2)[h]), (weights, np.eye(K2)[lo])) for h, lo in pairs]
-        else:
-            pairs = extreme_pairs(an.Psi @ weights, an.masks[0])
-            ends = [((np.eye(K1)[h], weights), (np.eye(K1)[lo], weights)) for h, lo in pairs]
-        if not ends:
-            return 0.0
-        return settings.tie_break_scale * max(
-            contrast_standard_error(inp, first, second, blend) for first, second in ends
-        )
-
-    return tolerance

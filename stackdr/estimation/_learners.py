@@ -207,7 +207,8 @@ def _knn_regressor(n_neighbors: int = 25):
 
 
 def _lasso(cv: int = 5):
-    return make_pipeline(StandardScaler(), LassoCV(cv=cv, n_alphas=30, max_iter=5000))
+    # scikit-learn 1.9 takes the number of penalties as `alphas` (`n_alphas` was removed).
+    return make_pipeline(StandardScaler(), LassoCV(cv=cv, alphas=30, max_iter=5000))
 
 
 CATALOGUE: dict[str, CatalogueEntry] = {

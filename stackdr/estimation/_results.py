@@ -14,9 +14,19 @@ import numpy as np
 import pandas as pd
 from scipy.stats import norm
 
-from stackdr.estimation._diagnostics import Diagnostics, fit_diagnostics
+from stackdr.estimation._diagnostics import (
+    Diagnostics,
+    fit_diagnostics,
+    sampling_sentence,
+    sampling_summary,
+)
 from stackdr.estimation._numbers import DEFAULT_DIGITS, number_text
-from stackdr.estimation._summary import ResultSummary, interval_sentence, units_sentence
+from stackdr.estimation._summary import (
+    ResultSummary,
+    interval_sentence,
+    units_sentence,
+    wrapped,
+)
 
 CAUTION = (
     "A causal reading needs consistency, no unmeasured confounding and positivity; the tool "
@@ -317,6 +327,12 @@ class BlendResult:
         return pd.DataFrame(rows)
 
     @property
+    def sampling(self) -> dict:
+        """Sampling weights and clusters of the fit (:func:`sampling_summary`): column names,
+        Kish effective sample size, number and sizes of clusters; None entries when absent."""
+        return sampling_summary(self.data, self.crossfit.weighted_fits)
+
+    @property
     def diagnostics(self) -> Diagnostics:
         """Overlap and clipping at the chosen propensity weights: blended propensity, effective
         sample size per arm, overlap histogram and clipping counts (computed on access)."""
@@ -353,6 +369,7 @@ class BlendResult:
         ResultSummary
         """
         boot = self.bootstrap
+        design = sampling_sentence(self.sampling, self.data.n)
         return ResultSummary(
             title=f"stackdr: {self.target.description}"
             + (f", outcome: {outcome_label}" if outcome_label else ""),
@@ -360,7 +377,8 @@ class BlendResult:
                 f"n = {self.data.n}, folds = {self.settings['folds']}, blend = "
                 f"{self.settings['blend']}, criterion = {self.settings['criterion']}, "
                 f"tie-break = {'on' if self.settings['tie_break'] else 'off'}"
-            ),
+            )
+            + (f"\n{wrapped(design)}" if design else ""),
             table=self.comparison(),
             level=self.level,
             weights={"propensity": self.alpha.copy(), "outcome": self.beta.copy()},

@@ -145,6 +145,22 @@ _TABLE = (
         estimator=False,
         metavar="COL",
     ),
+    Setting(
+        "weights",
+        None,
+        "text",
+        "sampling weights column (finite, >= 0): estimate the weighted-population target",
+        estimator=False,
+        metavar="COL",
+    ),
+    Setting(
+        "clusters",
+        None,
+        "text",
+        "cluster labels column: folds keep clusters whole, cluster-robust SEs and bootstrap",
+        estimator=False,
+        metavar="COL",
+    ),
     Setting("out", None, "text", "output folder", estimator=False, path=True, metavar="DIR"),
     Setting("overwrite", False, "switch", "replace an existing results.json", estimator=False),
     Setting(

@@ -8,6 +8,7 @@ from stackdr.inference._common import (
     InferenceSettings,
     draw_row_weights,
     replicate_generators,
+    resample_rows,
     summarise_replicates,
 )
 from stackdr.inference._refit import refit_bootstrap
@@ -21,6 +22,7 @@ __all__ = [
     "refit_bootstrap",
     "replicate_features",
     "replicate_generators",
+    "resample_rows",
     "reweighting_bootstrap",
     "summarise_replicates",
 ]

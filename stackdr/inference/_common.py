@@ -92,12 +92,36 @@ def replicate_generators(seed: int, replicates: int) -> list:
     return [np.random.default_rng(c) for c in children]
 
 
-def draw_row_weights(rng: np.random.Generator, n: int, kind: str) -> np.ndarray:
-    """Multinomial counts (the ordinary bootstrap) or mean-one exponential weights (Bayesian)."""
+def draw_row_weights(
+    rng: np.random.Generator, n: int, kind: str, cluster_codes: np.ndarray | None = None
+) -> np.ndarray:
+    """Multinomial counts (the ordinary bootstrap) or mean-one exponential weights (Bayesian).
+
+    With ``cluster_codes`` (0..G-1 per row) one weight is drawn per cluster (G draws) and every
+    row of a cluster carries its cluster's weight: the cluster bootstrap."""
+    if cluster_codes is not None:
+        return draw_row_weights(rng, int(cluster_codes.max()) + 1, kind)[cluster_codes]
     if kind == "multinomial":
         return np.bincount(rng.integers(0, n, n), minlength=n).astype(float)
     w = rng.standard_exponential(n)
     return w * (n / w.sum())
+
+
+def resample_rows(rng: np.random.Generator, n: int, cluster_codes: np.ndarray | None = None):
+    """Rows of one refit-bootstrap resample and their clusters: n rows drawn with replacement,
+    or G whole clusters drawn with replacement (a cluster drawn twice becomes two clusters of
+    the resample). Returns (rows, cluster codes of the resample or None)."""
+    if cluster_codes is None:
+        return rng.integers(0, n, n), None
+    groups = int(cluster_codes.max()) + 1
+    members = np.split(
+        np.argsort(cluster_codes, kind="stable"),
+        np.cumsum(np.bincount(cluster_codes, minlength=groups))[:-1],
+    )
+    drawn = rng.integers(0, groups, groups)
+    rows = np.concatenate([members[g] for g in drawn])
+    codes = np.repeat(np.arange(groups), [members[g].size for g in drawn])
+    return rows, codes
 
 
 def _interval(est: float, reps: np.ndarray, level: float, method: str) -> tuple[float, float]:

@@ -15,15 +15,18 @@ from stackdr.inference._common import (
     BootstrapResult,
     InferenceSettings,
     replicate_generators,
+    resample_rows,
     summarise_replicates,
 )
 
 
-def _refit_one(fit_sample: Callable, prepared, rows):
+def _refit_one(fit_sample: Callable, prepared, drawn):
     """One refit replicate: (estimates, alpha, beta, tie-break moved), or the reason it could
     not be fitted. A resample can leave an arm too small for the folds or make every learner of
-    a side fail; that replicate is left out rather than ending the run."""
-    data = prepared.take(rows)
+    a side fail; that replicate is left out rather than ending the run. ``drawn`` is (rows,
+    cluster codes of the resample or None)."""
+    rows, codes = drawn
+    data = prepared.take(rows) if codes is None else prepared.take(rows, codes)
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -47,7 +50,8 @@ def refit_bootstrap(
 ) -> BootstrapResult:
     """Resample rows and redo cross-fitting, learner fits and the weight search in each
     replicate (parallel through joblib). A row drawn twice may sit in training and test folds
-    at once, as is usual for this bootstrap.
+    at once, as is usual for this bootstrap. With clusters whole clusters are resampled, and
+    sampling weights travel with their rows.
 
     Parameters
     ----------
@@ -67,7 +71,8 @@ def refit_bootstrap(
     gens = replicate_generators(settings.seed, B)
     n = prepared.n
     t0 = time.perf_counter()
-    tasks = (delayed(_refit_one)(fit_sample, prepared, g.integers(0, n, n)) for g in gens)
+    clusters = prepared.cluster_codes
+    tasks = (delayed(_refit_one)(fit_sample, prepared, resample_rows(g, n, clusters)) for g in gens)
     run = Parallel(n_jobs=settings.n_jobs if n_jobs is None else n_jobs, return_as="generator")(
         tasks
     )

@@ -24,7 +24,11 @@ component, :func:`~stackdr.pairtable.lattice_phi`), and every other call goes th
 row terms of the replicate's nonzero rows. The search itself (lattice, starts, pattern search,
 polish, tie-break) is the full-sample one, unchanged, in every replicate.
 
-The refit bootstrap resamples rows and reruns everything, learner fits included: expensive,
+Sampling weights multiply the bootstrap row weights (they are in the per-row terms), and with
+clusters one weight is drawn per cluster and shared by its rows.
+
+The refit bootstrap resamples rows (or whole clusters) and reruns everything, learner fits
+included: expensive,
 fully honest about the learners too.
 """
 
@@ -127,6 +131,9 @@ def replicate_features(inp, cf, prepared, repeat: int, stack_alpha: np.ndarray) 
         F[:, sl["hess"]] = (probs[:, :, None] * probs[:, None, :]).reshape(n, -1)
     for name, values in _pls_terms(inp, stack_alpha).items():
         F[:, sl[name]] = values.reshape(n, -1)
+    if inp.sample_weight is not None:
+        # Every replicate sum is then sum_i w_i s_i F_i: bootstrap weights times sampling weights.
+        F *= inp.sample_weight[:, None]
     return F
 
 
@@ -191,7 +198,8 @@ def _stacked_rows(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, alpha0) -> 
 
 
 def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
-    """Run replicates ``indices``: row weights, batched moments, searches, estimates."""
+    """Run replicates ``indices``: row weights (one per cluster with clusters), batched
+    moments, searches, estimates. Sampling weights are in the features and the inputs."""
     settings, masks = an.settings, an.masks
     K1, K2 = an.base_learners, an.Psi.shape[1]
     layout = _Layout(K1, K2, cf_meta["classifier"])
@@ -199,7 +207,7 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
     n = inputs[0].n
     W = np.empty((n, len(indices)))
     for col, b in enumerate(indices):
-        W[:, col] = draw_row_weights(generators[b], n, kind)
+        W[:, col] = draw_row_weights(generators[b], n, kind, inputs[0].cluster_codes)
     t0 = time.perf_counter()
     sums = [W.T @ F for F in features]  # one matrix product per repeat
     tables = np.stack([(s[:, sl["pairs"]] / s[:, sl["d"]]).reshape(-1, K1, K2) for s in sums])

@@ -18,7 +18,12 @@ from sklearn.utils.validation import check_is_fitted
 
 from stackdr.core import blended_weight_side, row_contributions
 from stackdr.errors import InputError
-from stackdr.estimation import default_outcome_library, default_propensity_library
+from stackdr.estimation import (
+    accepts_sample_weight,
+    default_outcome_library,
+    default_propensity_library,
+    sample_weight_arguments,
+)
 from stackdr.search import STACKED_PROPENSITY
 
 # Propensity scales a blended classifier can average on, and the function of pi each averages.
@@ -115,6 +120,10 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
             "outcome": np.where(needed, data.Y, np.nan),
             "propensity": propensity,
         }
+        if data.weights is not None:
+            columns["sampling_weight"] = data.weights
+        if data.cluster_codes is not None:
+            columns["cluster"] = data.cluster_codes
         for head in target.outcome_heads:
             columns[head] = cf.outcome[head][r] @ beta
         weight_side = blended_weight_side(inp, alpha[None, :], blend)
@@ -124,6 +133,9 @@ def blended_nuisances(result, repeat: int | None = None) -> pd.DataFrame:
         frames.append(pd.DataFrame(columns))
     table = pd.concat(frames, ignore_index=True)
     table.attrs["propensity_scale"] = scale
+    # The user's column names behind the sampling_weight and cluster columns.
+    table.attrs["weights_column"] = data.weights_name
+    table.attrs["clusters_column"] = data.clusters_name
     return table
 
 
@@ -145,13 +157,18 @@ def _check_weights(estimators, weights, owner: str) -> dict[str, float]:
     return {k: v / total for k, v in values.items()}
 
 
-def _fit_members(estimators: dict, weights: dict, X, y, fit_params: dict) -> dict:
-    """Clone and fit the learners with positive weight (the others do not affect predictions)."""
-    return {
-        name: clone(estimators[name]).fit(X, y, **fit_params)
-        for name, w in weights.items()
-        if w > 0
-    }
+def _fit_members(estimators: dict, weights: dict, X, y, fit_params: dict, sample_weight) -> dict:
+    """Clone and fit the learners with positive weight (the others do not affect predictions);
+    ``sample_weight`` goes to the members that take it (a Pipeline's last step), the others are
+    fitted unweighted as in cross-fitting."""
+    fitted = {}
+    for name, w in weights.items():
+        if w <= 0:
+            continue
+        est = clone(estimators[name])
+        extra = sample_weight_arguments(est, sample_weight) if accepts_sample_weight(est) else {}
+        fitted[name] = est.fit(X, y, **fit_params, **extra)
+    return fitted
 
 
 class BlendedRegressor(RegressorMixin, BaseEstimator):
@@ -174,10 +191,13 @@ class BlendedRegressor(RegressorMixin, BaseEstimator):
         self.estimators = estimators
         self.weights = weights
 
-    def fit(self, X, y, **fit_params):
-        """Fit every learner with positive weight on (X, y); returns self."""
+    def fit(self, X, y, sample_weight=None, **fit_params):
+        """Fit every learner with positive weight on (X, y), with ``sample_weight`` where a
+        learner takes it; returns self."""
         self.weights_ = _check_weights(self.estimators, self.weights, type(self).__name__)
-        self.estimators_ = _fit_members(self.estimators, self.weights_, X, y, fit_params)
+        self.estimators_ = _fit_members(
+            self.estimators, self.weights_, X, y, fit_params, sample_weight
+        )
         self.n_features_in_ = np.asarray(X).shape[1]
         return self
 
@@ -221,8 +241,9 @@ class BlendedClassifier(ClassifierMixin, BaseEstimator):
         self.scale = scale
         self.clip = clip
 
-    def fit(self, X, y, **fit_params):
-        """Fit every learner with positive weight on (X, y); returns self."""
+    def fit(self, X, y, sample_weight=None, **fit_params):
+        """Fit every learner with positive weight on (X, y), with ``sample_weight`` where a
+        learner takes it; returns self."""
         owner = type(self).__name__
         if self.scale not in SCALES:
             raise InputError(
@@ -234,7 +255,9 @@ class BlendedClassifier(ClassifierMixin, BaseEstimator):
         if classes.size != 2:
             raise InputError(f"{owner}: needs exactly two classes, got {classes.tolist()}")
         self.weights_ = _check_weights(self.estimators, self.weights, owner)
-        self.estimators_ = _fit_members(self.estimators, self.weights_, X, y, fit_params)
+        self.estimators_ = _fit_members(
+            self.estimators, self.weights_, X, y, fit_params, sample_weight
+        )
         self.classes_ = classes
         self.n_features_in_ = np.asarray(X).shape[1]
         return self
@@ -292,6 +315,7 @@ def blended_models(
     *,
     propensity_learners: dict | None = None,
     outcome_learners: dict | None = None,
+    sample_weight=None,
 ) -> dict:
     """Refit both libraries on all rows and return fitted blends at the chosen weights.
 
@@ -303,6 +327,9 @@ def blended_models(
     propensity_learners, outcome_learners : dict name -> estimator, optional
         The libraries the result was fitted with (default: the default libraries, whose names
         must then match the result's learners).
+    sample_weight : array, optional
+        Sampling weights of the refits (default: the result's sampling weights when X is not
+        given); passed to every learner that takes ``sample_weight``.
 
     Returns
     -------
@@ -322,6 +349,10 @@ def blended_models(
     X = data.X if X is None else np.asarray(X, dtype=float)
     A = data.A if A is None else np.asarray(A, dtype=float).reshape(-1)
     Y = data.Y if Y is None else np.asarray(Y, dtype=float).reshape(-1)
+    w = data.weights if sample_weight is None and X is data.X else sample_weight
+    w = None if w is None else np.asarray(w, dtype=float).reshape(-1)
+    if w is not None and w.shape[0] != X.shape[0]:
+        raise InputError(f"sample_weight has {w.shape[0]} rows, X has {X.shape[0]}")
     if not (X.shape[0] == A.shape[0] == Y.shape[0]):
         raise InputError(
             f"X, A and Y must have the same number of rows, got {X.shape[0]}, {A.shape[0]}, "
@@ -344,7 +375,7 @@ def blended_models(
     models: dict = {}
     blend = result.settings["blend"]
     if not binary:
-        models["propensity"] = BlendedRegressor(plib, alpha).fit(X, A)
+        models["propensity"] = BlendedRegressor(plib, alpha).fit(X, A, w)
     else:
         scales = {}
         for comp in target.components:
@@ -358,16 +389,16 @@ def blended_models(
         clip = float(cf.clip)
         if len(set(scales.values())) == 1:
             scale = next(iter(scales.values()))
-            models["propensity"] = BlendedClassifier(plib, alpha, scale, clip).fit(X, A)
+            models["propensity"] = BlendedClassifier(plib, alpha, scale, clip).fit(X, A, w)
         else:
             for head, scale in scales.items():
                 model = BlendedClassifier(plib, alpha, scale, clip)
-                models[f"propensity_{head}"] = model.fit(X, A)
+                models[f"propensity_{head}"] = model.fit(X, A, w)
     needed = target.outcome_needed(A)
     if cf.outcome_mode == "pooled" and any(h in ("mu1", "mu0") for h in target.outcome_heads):
         rows = needed
         models["outcome"] = BlendedRegressor(olib, beta).fit(
-            np.column_stack([X[rows], A[rows]]), Y[rows]
+            np.column_stack([X[rows], A[rows]]), Y[rows], None if w is None else w[rows]
         )
     for head in target.outcome_heads:
         if head == "m":
@@ -376,5 +407,7 @@ def blended_models(
             continue
         else:
             rows = needed & (A == float(head[-1]))
-        models[head] = BlendedRegressor(olib, beta).fit(X[rows], Y[rows])
+        models[head] = BlendedRegressor(olib, beta).fit(
+            X[rows], Y[rows], None if w is None else w[rows]
+        )
     return models

@@ -230,6 +230,18 @@ def _cautions(result: BlendResult) -> list:
             f"clipped to [{result.crossfit.clip:g}, "
             f"{1 - result.crossfit.clip:g}]; some rows have little overlap between the arms."
         )
+    sampling = result.sampling
+    weights, clusters = sampling["weights"], sampling["clusters"]
+    if weights is not None and weights["unweighted_learners"]:
+        cautions.append(
+            "Learners fitted without the sampling weights (their fit takes no sample_weight): "
+            f"{', '.join(weights['unweighted_learners'])}."
+        )
+    if clusters is not None and clusters["few"]:
+        cautions.append(
+            f"Only {clusters['count']} clusters: cluster-robust standard errors and the cluster "
+            "bootstrap are unreliable with fewer than 30."
+        )
     if result.crossfit.failures:
         cautions.append(
             f"{len(result.crossfit.failures)} learner(s) failed and were left out; see the "
@@ -331,6 +343,7 @@ def result_to_dict(
             "treatment": data.treatment_name,
             "outcome": data.outcome_name,
             "covariates": [str(c) for c in data.covariate_names],
+            **plain(result.sampling, "sampling"),
         },
         "notes": list(result.notes),
         "cautions": _cautions(result),

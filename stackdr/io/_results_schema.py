@@ -19,7 +19,7 @@ from jsonschema import Draft202012Validator, validators
 
 from stackdr.errors import InputError
 
-SCHEMA = "stackdr-results/2"
+SCHEMA = "stackdr-results/3"
 SCHEMA_FILE = "results.schema.json"
 
 

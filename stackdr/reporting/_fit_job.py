@@ -42,6 +42,33 @@ def provenance_section(r: dict) -> str:
     return "<h3>Provenance</h3>\n" + table(["item", "value"], rows)
 
 
+def _sampling_rows(data: dict) -> list:
+    """Rows of the job table for the sampling weights and clusters, when the fit used them."""
+    rows = []
+    weights, clusters = data.get("weights"), data.get("clusters")
+    if weights is not None:
+        ess = weights["kish_effective_sample_size"]
+        rows.append(
+            [
+                "sampling weights column",
+                f"{weights['column']} (total {weights['total']:.6g}, range {weights['min']:.4g} "
+                f"to {weights['max']:.4g}, Kish effective sample size {ess:.1f})",
+            ]
+        )
+        if weights["unweighted_learners"]:
+            rows.append(["learners fitted unweighted", ", ".join(weights["unweighted_learners"])])
+    if clusters is not None:
+        few = " (fewer than 30: cluster-robust SEs unreliable)" if clusters["few"] else ""
+        rows.append(
+            [
+                "clusters column",
+                f"{clusters['column']}: {clusters['count']} clusters of {clusters['smallest']} "
+                f"to {clusters['largest']} rows{few}",
+            ]
+        )
+    return rows
+
+
 def job_section(r: dict) -> str:
     data, diag = r["data"], r["diagnostics"]
     pairs = r["pair_table"]
@@ -58,6 +85,7 @@ def job_section(r: dict) -> str:
             ["treatment column", data["treatment"]],
             ["outcome column", data["outcome"]],
             ["covariates", ", ".join(data["covariates"])],
+            *_sampling_rows(data),
             ["propensity learners", ", ".join(pairs["rows"])],
             ["outcome learners", ", ".join(pairs["columns"])],
             ["seed", r["seed"]],

@@ -12,7 +12,13 @@ from __future__ import annotations
 
 import pathlib
 
-from stackdr.estimation import BLEND_MEANINGS, column_text, number_text, units_sentence
+from stackdr.estimation import (
+    BLEND_MEANINGS,
+    column_text,
+    number_text,
+    sampling_sentence,
+    units_sentence,
+)
 from stackdr.io import atomic_write, plain, validate_results
 from stackdr.reporting._figures import FIGURES, landscape_kind, render_figures
 from stackdr.reporting._fit_job import digits_of, job_section
@@ -85,6 +91,13 @@ def _headline(r: dict) -> str:
     )
     out += paragraph(f"Interval: {interval_description(r)}.")
     out += paragraph(units_sentence(r["target"]["name"], outcome))
+    data = r["data"]
+    design = sampling_sentence(
+        {"weights": data.get("weights"), "clusters": data.get("clusters")}, r["n"]
+    )
+    if design:
+        few = (data.get("clusters") or {}).get("few")
+        out += paragraph(design, "note" if few else "explain")
     if iv["method"] != "wald":
         wald_low, wald_high = column_text([main["wald_low"], main["wald_high"]], digits)
         out += paragraph(

@@ -8,11 +8,14 @@ from collections.abc import Callable
 import numpy as np
 
 from stackdr.errors import InputError
+from stackdr.studies._design_clustered import CLUSTERED_DESIGNS
 from stackdr.studies._design_library import BUILT_IN
 from stackdr.studies._design_library_added import ADDED_DESIGNS
 from stackdr.studies._designs import Design, DesignData, check_target
 
-_REGISTRY: dict[str, Design] = {design.name: design for design in (*BUILT_IN, *ADDED_DESIGNS)}
+_REGISTRY: dict[str, Design] = {
+    design.name: design for design in (*BUILT_IN, *ADDED_DESIGNS, *CLUSTERED_DESIGNS)
+}
 
 
 def list_designs() -> list[str]:

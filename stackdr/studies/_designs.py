@@ -49,6 +49,9 @@ class DesignData:
         Name of the design that produced the data.
     notes : str
         Free text (how the truth is known, caveats).
+    clusters : str or None
+        Column of the frame holding cluster labels, for designs whose rows are clustered (not
+        a covariate); None for independent rows.
     """
 
     frame: pd.DataFrame
@@ -61,14 +64,16 @@ class DesignData:
     true_outcome: dict[int, np.ndarray] | None = None
     name: str = ""
     notes: str = ""
+    clusters: str | None = None
 
     def __post_init__(self) -> None:
         if not isinstance(self.frame, pd.DataFrame):
             raise TypeError(f"frame must be a pandas DataFrame, got {type(self.frame).__name__}")
         self.covariates = list(self.covariates)
-        for role, column in [("treatment", self.treatment), ("outcome", self.outcome)] + [
-            ("covariate", c) for c in self.covariates
-        ]:
+        roles = [("treatment", self.treatment), ("outcome", self.outcome)]
+        if self.clusters is not None:
+            roles.append(("clusters", self.clusters))
+        for role, column in roles + [("covariate", c) for c in self.covariates]:
             if column not in self.frame.columns:
                 raise InputError(
                     f"{role} column {column!r} is not in the frame "

@@ -112,13 +112,19 @@ def check_settings(settings: Mapping[str, Any]) -> dict[str, Any]:
     return dict(settings)
 
 
-def make_replicate(library: str | Mapping = "default", **settings: Any) -> partial:
+def make_replicate(
+    library: str | Mapping = "default", *, cluster_aware: bool = True, **settings: Any
+) -> partial:
     """A picklable replicate function for :func:`stackdr.study.run_study`.
 
     Parameters
     ----------
     library : str or mapping
         See :func:`build_libraries`.
+    cluster_aware : bool, default True
+        For a design with clusters (``DesignData.clusters``): fit with them (folds keep
+        clusters whole, cluster-robust SEs, cluster bootstrap). False treats the rows as
+        independent, for comparing row-level with cluster-aware intervals.
     **settings
         BlendEstimator settings from :data:`STUDY_SETTINGS` (e.g. ``bootstrap=200``,
         ``tie_break_scale=1.0``).
@@ -129,7 +135,12 @@ def make_replicate(library: str | Mapping = "default", **settings: Any) -> parti
         ``replicate(design_data, seed) -> list[dict]``.
     """
     build_libraries(library)
-    return partial(simulate_replicate, library=library, settings=check_settings(settings))
+    return partial(
+        simulate_replicate,
+        library=library,
+        settings=check_settings(settings),
+        cluster_aware=bool(cluster_aware),
+    )
 
 
 def simulate_replicate(
@@ -138,6 +149,7 @@ def simulate_replicate(
     *,
     library: str | Mapping = "default",
     settings: Mapping[str, Any] | None = None,
+    cluster_aware: bool = True,
 ) -> list[dict]:
     """Fit the estimator once on a simulated data set; one row per estimator.
 
@@ -151,6 +163,8 @@ def simulate_replicate(
         See :func:`build_libraries`.
     settings : mapping, optional
         BlendEstimator settings (see :data:`STUDY_SETTINGS`).
+    cluster_aware : bool, default True
+        Fit with the design's clusters when it has them (see :func:`make_replicate`).
 
     Returns
     -------
@@ -174,7 +188,10 @@ def simulate_replicate(
         # Convergence chatter from learners would flood a study's log; dropped learners are
         # recorded in the rows instead.
         warnings.simplefilter("ignore")
-        result = estimator.fit(data.frame, data.treatment, data.outcome, data.covariates)
+        clusters = data.clusters if cluster_aware else None
+        result = estimator.fit(
+            data.frame, data.treatment, data.outcome, data.covariates, clusters=clusters
+        )
     cf = result.crossfit
     seconds = float(result.timings["total"])
     rows = []
@@ -202,7 +219,13 @@ def simulate_replicate(
         )
     rows[0].update(_search_details(result))
     oracle = oracle_row(
-        data, result.target, result.data.A, result.data.Y, estimator.clip, estimator.level
+        data,
+        result.target,
+        result.data.A,
+        result.data.Y,
+        estimator.clip,
+        estimator.level,
+        result.data.cluster_codes,
     )
     if oracle is not None:
         oracle["estimator_seconds"] = seconds
@@ -234,6 +257,7 @@ def oracle_row(
     Y: np.ndarray,
     clip: float,
     level: float = 0.95,
+    cluster_codes: np.ndarray | None = None,
 ) -> dict | None:
     """AIPW with the design's true nuisances, or None when the design does not supply them.
 
@@ -251,6 +275,8 @@ def oracle_row(
     clip : float
     level : float
         Level of the Wald interval.
+    cluster_codes : numpy.ndarray, optional
+        Cluster of each row (0..G-1): the SE is then cluster-robust like the learners' rows.
 
     Returns
     -------
@@ -270,7 +296,7 @@ def oracle_row(
         p = np.asarray(component.weight_transform(pi), dtype=float)
         b = heads[component.outcome_head]
         H += b * p * rows["h1"][c] + b * rows["h2"][c] + p * rows["h3"][c]
-    fit = estimate_from_rows(H, rows["d"])
+    fit = estimate_from_rows(H, rows["d"], cluster_codes=cluster_codes)
     z = norm.ppf(0.5 + level / 2)
     low, high = fit.estimate - z * fit.se, fit.estimate + z * fit.se
     return {

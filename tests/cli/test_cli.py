@@ -184,6 +184,9 @@ def test_learners_lists_the_catalogue(capsys):
         line = next(line for line in out.splitlines() if line.startswith(name + " "))
         assert entry.kind in line and " ".join(entry.description.split()) in flat
     assert "n_estimators=100" in out
+    # Which learners use sampling weights: k nearest neighbours has no sample_weight.
+    assert "logistic (classifier, weighted fits)" in out
+    assert "knn-regressor (regressor, unweighted fits)" in out
     assert max(len(line) for line in out.splitlines()) <= 100
 
 
@@ -233,7 +236,16 @@ def bad_inputs(root: Path) -> dict:
     (root / "taken" / "results.json").write_text("{}")
     (root / "notes.xlsx").write_text("x")
     (root / "bad.json").write_text("{not json")
+    frame = frame.assign(
+        w=np.linspace(0.5, 2.0, len(frame)),
+        w_neg=np.where(np.arange(len(frame)) == 3, -0.5, 1.0),
+        w_gap=np.where(np.arange(len(frame)) == 3, np.nan, 1.0),
+        w_text=np.where(np.arange(len(frame)) == 3, "heavy", "1"),
+        site="north",
+    )
+    frame.to_csv(root / "design.csv", index=False)
     base = estimate(root)
+    design = [*estimate(root, data="design.csv"), "--covariates", "age"]
     return {
         "missing file": (["estimate", root / "absent.csv", *base[2:]], "not found"),
         "unknown column": ([*base, "--covariates", "age", "weight"], "'weight'"),
@@ -268,6 +280,15 @@ def bad_inputs(root: Path) -> dict:
         "too many folds": ([*base, "--folds", 200], "fewer than the 200 needed"),
         "bad results file": (["report", root / "bad.json"], "is not valid JSON"),
         "unknown command": (["estimat"], "invalid choice: 'estimat'"),
+        "weights column not found": ([*design, "--weights", "wt"], "weights column 'wt' not found"),
+        "negative weights": ([*design, "--weights", "w_neg"], "'w_neg' has 1 negative values"),
+        "missing weight": ([*design, "--weights", "w_gap"], "'w_gap' has 1 missing or infinite"),
+        "text weights": ([*design, "--weights", "w_text"], "'w_text' is not numeric"),
+        "one cluster": ([*design, "--clusters", "site"], "'site' has a single cluster"),
+        "clusters column not found": (
+            [*design, "--clusters", "ward"],
+            "clusters column 'ward' not found",
+        ),
     }
 
 
@@ -293,6 +314,12 @@ CASE_NAMES = [
     "too many folds",
     "bad results file",
     "unknown command",
+    "weights column not found",
+    "negative weights",
+    "missing weight",
+    "text weights",
+    "one cluster",
+    "clusters column not found",
 ]
 
 

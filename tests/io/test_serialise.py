@@ -44,6 +44,8 @@ def test_dict_carries_the_fit(fitted):
         "treatment": "treated",
         "outcome": SHELL,
         "covariates": [SCRIPT, "x2", MATH],
+        "weights": None,
+        "clusters": None,
     }
     assert d["seed"] == 3 and d["settings"]["bootstrap"] == 50
     assert d["cautions"][0].startswith("A causal reading needs")

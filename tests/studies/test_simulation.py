@@ -226,7 +226,11 @@ def test_oracle_row_in_study_is_close_to_truth(reference):
 
 def test_replicate_is_picklable_and_validates_settings():
     replicate = pickle.loads(pickle.dumps(make_replicate("parametric", tie_break_scale=1.0)))
-    assert replicate.keywords == {"library": "parametric", "settings": {"tie_break_scale": 1.0}}
+    assert replicate.keywords == {
+        "library": "parametric",
+        "settings": {"tie_break_scale": 1.0},
+        "cluster_aware": True,
+    }
     with pytest.raises(InputError, match="unknown estimator setting 'n_jobs'"):
         make_replicate("default", n_jobs=2)
     with pytest.raises(InputError, match="unknown library 'tiny'"):
