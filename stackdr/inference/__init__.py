@@ -10,17 +10,29 @@ from stackdr.inference._common import (
     replicate_generators,
     summarise_replicates,
 )
+from stackdr.inference._fold_spread import (
+    FoldSpread,
+    between_fold_scale,
+    fold_spread,
+    top_row_share,
+    widen_intervals,
+)
 from stackdr.inference._refit import refit_bootstrap
 from stackdr.inference._reweighting import replicate_features, reweighting_bootstrap
 
 __all__ = [
     "REWEIGHTING_KINDS",
     "BootstrapResult",
+    "FoldSpread",
     "InferenceSettings",
+    "between_fold_scale",
     "draw_row_weights",
+    "fold_spread",
     "refit_bootstrap",
     "replicate_features",
     "replicate_generators",
     "reweighting_bootstrap",
     "summarise_replicates",
+    "top_row_share",
+    "widen_intervals",
 ]
