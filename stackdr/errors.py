@@ -18,6 +18,11 @@ class PositivityWarning(UserWarning):
     """Propensities reached the clipping bounds: overlap between the arms is in doubt."""
 
 
+class UnstableLearnersWarning(UserWarning):
+    """The cross-fitting folds disagree beyond sampling noise: refitting the learners moves the
+    estimate, which the reweighting bootstrap does not see (the refit bootstrap does)."""
+
+
 def warn_user(message: str, category: type[Warning] = UserWarning) -> None:
     """Issue a warning attributed to the first caller outside stackdr (the user's own line),
     so the printed source line is the user's call, not an internal one, however deep inside

@@ -12,6 +12,7 @@ from stackdr.estimation._diagnostics import (
     weight_side_values,
 )
 from stackdr.estimation._estimator import BlendEstimator, phi_function
+from stackdr.estimation._fold_check import ALERT_P, FoldCheck, check_folds
 from stackdr.estimation._learners import (
     CATALOGUE,
     check_library,
@@ -74,6 +75,7 @@ __all__ = [
     "native_threads",
     "threads_per_fit",
     "worker_count",
+    "ALERT_P",
     "BLEND_MEANINGS",
     "BOOTSTRAP_KINDS",
     "BlendEstimator",
@@ -85,6 +87,7 @@ __all__ = [
     "DEFAULT_DIGITS",
     "DIRECTIONS",
     "Diagnostics",
+    "FoldCheck",
     "ESTIMATOR_PARAMS",
     "EstimatorRow",
     "INTERVALS",
@@ -99,6 +102,7 @@ __all__ = [
     "Setting",
     "blended_propensity",
     "check_cluster",
+    "check_folds",
     "check_library",
     "check_value",
     "close_match",

@@ -12,8 +12,8 @@ from stackdr.inference._common import (
 )
 from stackdr.inference._fold_spread import (
     FoldSpread,
-    between_fold_scale,
     fold_spread,
+    paired_refit_ratio,
     top_row_share,
     widen_intervals,
 )
@@ -25,9 +25,9 @@ __all__ = [
     "BootstrapResult",
     "FoldSpread",
     "InferenceSettings",
-    "between_fold_scale",
     "draw_row_weights",
     "fold_spread",
+    "paired_refit_ratio",
     "refit_bootstrap",
     "replicate_features",
     "replicate_generators",

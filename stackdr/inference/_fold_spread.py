@@ -130,26 +130,6 @@ def top_row_share(influence: np.ndarray, share: float = TOP_ROWS) -> float:
     return float(sq[:top].sum() / total)
 
 
-def between_fold_scale(folds: int, rule: str) -> float:
-    """Multiplier of tau^2 in the variance added to the bootstrap's: ``"mean"`` 1 / K (the
-    fold estimates' mean, each fold's model deviation independent), or ``"shared"``
-    (K - 1)^2 / K (fold models fitted on overlapping training rows: each fold's model deviation
-    the mean influence of its K - 1 training folds, so the between-fold spread sees only the
-    non-shared part, 1 / (K - 1) of the deviation's variance, while the cross-fitted estimate
-    carries (K - 1) / K of it).
-
-    Examples
-    --------
-    >>> between_fold_scale(5, "mean"), between_fold_scale(5, "shared")
-    (0.2, 3.2)
-    """
-    if rule == "mean":
-        return 1.0 / folds
-    if rule == "shared":
-        return (folds - 1) ** 2 / folds
-    raise ValueError(f"unknown between-fold rule {rule!r}")
-
-
 def widen_intervals(boot, estimates: dict, added: dict):
     """The bootstrap record with ``added[name]`` (a variance) added to each estimator's SE and
     its interval widened about the estimate by the ratio of new to old SE (keeping the
@@ -179,3 +159,26 @@ def widen_intervals(boot, estimates: dict, added: dict):
         intervals[name] = (centre - factor * (centre - low), centre + factor * (high - centre))
         ses[name] = new
     return replace(boot, standard_errors=ses, intervals=intervals)
+
+
+def paired_refit_ratio(refit: np.ndarray, reweighted: np.ndarray, estimate: float) -> float:
+    """sqrt(sum_b (refit_b - estimate)^2 / sum_b (reweighted_b - estimate)^2) over the replicates
+    both bootstraps drew with the same rows (replicate b of each uses the same generator).
+
+    The refit bootstrap's extra spread, measured against the reweighting bootstrap on shared row
+    draws: the row-sampling part common to both cancels in the ratio, so a few refit
+    replicates estimate it far more precisely than their own SD would (a ratio estimator with
+    common random numbers). Replicates that failed (NaN) are left out of both sums.
+
+    Examples
+    --------
+    >>> paired_refit_ratio(np.array([1.0, -2.0]), np.array([0.5, -1.0]), 0.0)
+    2.0
+    """
+    refit = np.asarray(refit, dtype=float)
+    reweighted = np.asarray(reweighted, dtype=float)[: refit.size]
+    ok = np.isfinite(refit) & np.isfinite(reweighted)
+    den = float(np.sum((reweighted[ok] - estimate) ** 2))
+    if den == 0.0:
+        return float("nan")
+    return float(np.sqrt(np.sum((refit[ok] - estimate) ** 2) / den))

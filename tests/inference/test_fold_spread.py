@@ -10,8 +10,8 @@ from scipy.stats import chi2
 
 from stackdr.inference import (
     BootstrapResult,
-    between_fold_scale,
     fold_spread,
+    paired_refit_ratio,
     top_row_share,
     widen_intervals,
 )
@@ -83,13 +83,6 @@ def test_top_row_share():
     assert top_row_share(np.zeros(5)) == 0.0
 
 
-def test_between_fold_scale():
-    assert between_fold_scale(5, "mean") == pytest.approx(0.2)
-    assert between_fold_scale(5, "shared") == pytest.approx(16 / 5)
-    with pytest.raises(ValueError):
-        between_fold_scale(5, "other")
-
-
 def _boot():
     return BootstrapResult(
         "multinomial",
@@ -114,3 +107,14 @@ def test_widen_intervals_adds_variance_and_keeps_asymmetry():
     assert wider.intervals["a"] == pytest.approx((-1.0, 5.0))
     assert wider.standard_errors["b"] == 2.0 and wider.intervals["b"] == (2.0, 5.0)
     assert boot.standard_errors["a"] == 1.0  # the input record is unchanged
+
+
+def test_paired_refit_ratio_cancels_the_shared_draws():
+    # Refit replicates = reweighting replicates + an independent refit part: the ratio is
+    # sqrt(1 + refit variance / reweighting variance) up to noise [construction].
+    rng = np.random.default_rng(3)
+    shared = rng.normal(size=4000)
+    ratio = paired_refit_ratio(shared + 0.5 * rng.normal(size=4000), shared, 0.0)
+    assert ratio == pytest.approx(np.sqrt(1.25), rel=0.03)
+    assert paired_refit_ratio(np.array([np.nan, 2.0]), np.array([5.0, 1.0]), 0.0) == 2.0
+    assert np.isnan(paired_refit_ratio(np.ones(2), np.zeros(2), 0.0))
