@@ -19,8 +19,9 @@ class PositivityWarning(UserWarning):
 
 
 class UnstableLearnersWarning(UserWarning):
-    """The cross-fitting folds disagree beyond sampling noise: refitting the learners moves the
-    estimate, which the reweighting bootstrap does not see (the refit bootstrap does)."""
+    """The cross-fitting folds disagree more than sampling noise explains: refitting the learners
+    may move the estimate, which the reweighting bootstrap does not see (the refit bootstrap
+    does)."""
 
 
 def warn_user(message: str, category: type[Warning] = UserWarning) -> None:

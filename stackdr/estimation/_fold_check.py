@@ -12,8 +12,12 @@ the out-of-fold predictions fixed, cannot see that, so the fit warns
 With the setting ``calibration_refits`` (M > 0) and a reweighting bootstrap, M refit replicates
 are run on the row draws of the first M reweighting replicates; each estimator's bootstrap SE and
 interval are widened by the paired ratio of the two bootstraps' spreads
-(:func:`~stackdr.inference.paired_refit_ratio`) where it exceeds 1. The evidence for the rule and
-its default (off) is in DEVELOPERS.md ("Honest SE with unstable learners").
+(:func:`~stackdr.inference.paired_refit_ratio`) where it exceeds 1. Replicate b of both
+bootstraps comes from the same generator, so the row draws are shared with multinomial row
+weights (the default); with Bayesian weights the ratio compares unpaired replicates (noisier).
+Cost: M full fits (cross-fitting included), against a reweighting bootstrap that fits nothing.
+The evidence for the rule and its default (off) is in DEVELOPERS.md ("Honest SE with unstable
+learners").
 """
 
 from __future__ import annotations
@@ -91,9 +95,9 @@ class FoldCheck:
                 text += "the fold estimates agree within sampling noise."
             else:
                 text += (
-                    "the fold estimates disagree beyond sampling noise, so refitting the "
-                    "learners moves the estimate; the reweighting bootstrap holds the fits fixed "
-                    "and misses that"
+                    "the fold estimates disagree more than sampling noise explains (by chance in "
+                    "1 fit in 20): refitting the learners may move the estimate, which the "
+                    "reweighting bootstrap (fits held fixed) misses"
                 )
                 text += "." if self.corrected else "; consider --bootstrap-kind refit."
         return text + self._correction()
@@ -117,10 +121,11 @@ class FoldCheck:
 
 
 def _spread(result, row) -> tuple[FoldSpread, np.ndarray]:
+    """Fold spread and influence values of ``row`` on the first fold assignment."""
     inp = result.analysis.inputs[0]
     H = row_contributions(inp, row.alpha, row.beta, row.blend)
     spread = fold_spread(H, inp.d, result.crossfit.fold_labels[0])
-    return spread, (H - row.estimate * inp.d) / inp.d.mean()
+    return spread, (H - H.sum() / inp.d.sum() * inp.d) / inp.d.mean()
 
 
 def _disagree(spread: FoldSpread) -> bool:

@@ -92,7 +92,7 @@ def test_warning_fires_on_unstable_learners_and_not_on_stable_ones():
         stable = _fit(unstable=False)
     assert not stable.fold_check.alert and _unstable_warnings(record) == []
     assert "agree within sampling noise" in _text(stable)
-    assert "disagree beyond sampling noise" in _text(unstable)
+    assert "disagree more than sampling noise explains" in _text(unstable)
 
 
 def test_no_warning_with_the_refit_bootstrap():
