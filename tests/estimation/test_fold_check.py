@@ -8,7 +8,6 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
-from sklearn.base import BaseEstimator, ClassifierMixin
 from sklearn.dummy import DummyRegressor
 from sklearn.linear_model import LinearRegression, LogisticRegression
 
@@ -17,23 +16,7 @@ from stackdr.core import row_contributions
 from stackdr.errors import UnstableLearnersWarning
 from stackdr.inference import fold_spread
 from stackdr.io import plain, result_to_dict, validate_results
-from tests.helpers import confounded_data
-
-
-class SwingingClassifier(ClassifierMixin, BaseEstimator):
-    """A constant propensity that swings with its training rows: 0.5 + 4 x (mean of the first
-    covariate over the training rows), clipped to [0.2, 0.8]. Folds' training sets differ, so
-    their fitted models differ by far more than the rows' sampling noise moves an estimate
-    [construction]."""
-
-    def fit(self, X, y):
-        self.classes_ = np.array([0, 1])
-        self.p_ = float(np.clip(0.5 + 4 * np.mean(np.asarray(X)[:, 0]), 0.2, 0.8))
-        return self
-
-    def predict_proba(self, X):
-        p = np.full(np.asarray(X).shape[0], self.p_)
-        return np.column_stack([1 - p, p])
+from tests.helpers import SwingingClassifier, confounded_data
 
 
 def _data(seed=5, n=800):
