@@ -22,6 +22,12 @@ class PositivityWarning(UserWarning):
     """Propensities reached the clipping bounds: overlap between the arms is in doubt."""
 
 
+class UnstableLearnersWarning(UserWarning):
+    """The cross-fitting folds disagree more than sampling noise explains: refitting the learners
+    may move the estimate, which the reweighting bootstrap does not see (the refit bootstrap
+    does)."""
+
+
 def warn_user(message: str, category: type[Warning] = UserWarning) -> None:
     """Issue a warning attributed to the first caller outside stackdr (the user's own line),
     so the printed source line is the user's call, not an internal one, however deep inside

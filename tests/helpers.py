@@ -1,6 +1,7 @@
-"""Shared test tools: learners that return known functions, simple simulated data, hypothesis
-strategies for pair tables and simplex points, a fit with hostile learner names, and the quick
-command-line configuration with the arguments of ``stackdr estimate``.
+"""Shared test tools: learners that return known functions (or swing with their training rows),
+simple simulated data, hypothesis strategies for pair tables and simplex points, a fit with
+hostile learner names, and the quick command-line configuration with the arguments of
+``stackdr estimate``.
 
 Test modules import shared things from here (fixtures live in ``tests/conftest.py``), never from
 one another.
@@ -50,6 +51,22 @@ class KnownClassifier(ClassifierMixin, BaseEstimator):
 
     def predict_proba(self, X):
         p = np.asarray(self.function(np.asarray(X)), dtype=float)
+        return np.column_stack([1 - p, p])
+
+
+class SwingingClassifier(ClassifierMixin, BaseEstimator):
+    """A constant propensity that swings with its training rows: 0.5 + 4 x (mean of the first
+    covariate over the training rows), clipped to [0.2, 0.8]. Folds' training sets differ, so
+    their fitted models differ by far more than the rows' sampling noise moves an estimate
+    [construction]."""
+
+    def fit(self, X, y):
+        self.classes_ = np.array([0, 1])
+        self.p_ = float(np.clip(0.5 + 4 * np.mean(np.asarray(X)[:, 0]), 0.2, 0.8))
+        return self
+
+    def predict_proba(self, X):
+        p = np.full(np.asarray(X).shape[0], self.p_)
         return np.column_stack([1 - p, p])
 
 

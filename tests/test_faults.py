@@ -28,10 +28,16 @@ from sklearn.linear_model import LinearRegression, LogisticRegression
 
 from stackdr import BlendEstimator
 from stackdr.cli import main
-from stackdr.errors import InputError, LearnerError, PositivityWarning
+from stackdr.errors import InputError, LearnerError, PositivityWarning, UnstableLearnersWarning
 from stackdr.io import load_config, read_results_json
 from stackdr.search import STACKED_PROPENSITY
-from tests.helpers import QUICK_NO_BOOTSTRAP, KnownRegressor, confounded_data, estimate_args
+from tests.helpers import (
+    QUICK_NO_BOOTSTRAP,
+    KnownRegressor,
+    SwingingClassifier,
+    confounded_data,
+    estimate_args,
+)
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 
@@ -569,6 +575,9 @@ CHECKED = {
     "config: learner parameter out of range": "runs; that learner dropped with a warning",
     "one learner on a side (K = 1)": "runs; weight 1 on that learner",
     "outcome scaled by 1e12 or 1e-12": "runs; estimate and SE scale exactly (1e-6 relative)",
+    "cross-fitting folds disagree more than sampling noise explains (unstable learners)": (
+        "runs; warning recommending the refit bootstrap"
+    ),
 }
 
 
@@ -666,6 +675,24 @@ def test_failed_lp_falls_back_to_a_vertex(monkeypatch, replacement, message):
         assert result.search.records[record].status == "fallback"
         weights = result.search.records[record].weights
         assert np.count_nonzero(weights) == 1 and weights.max() == 1.0
+
+
+def test_disagreeing_folds_warn_and_recommend_refit():
+    rng = np.random.default_rng(5)
+    X, A, Y, _ = confounded_data(rng, 800)
+    frame = pd.DataFrame(X, columns=["x1", "x2", "x3"]).assign(a=A, y=Y + 10)
+    estimator = BlendEstimator(
+        "ate",
+        {"swinging": SwingingClassifier()},
+        {"zero": DummyRegressor(strategy="constant", constant=0.0)},
+        folds=5,
+        seed=2,
+        bootstrap=0,
+        n_jobs=1,
+    )
+    with pytest.warns(UnstableLearnersWarning, match="consider --bootstrap-kind refit"):
+        result = estimator.fit(frame, "a", "y")
+    assert np.isfinite(result.estimate) and result.fold_check.alert
 
 
 def test_single_learner_sides():

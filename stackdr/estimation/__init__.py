@@ -22,6 +22,7 @@ from stackdr.estimation._diagnostics import (
     weight_side_values,
 )
 from stackdr.estimation._estimator import BlendEstimator
+from stackdr.estimation._fold_check import ALERT_P, FoldCheck, check_folds
 from stackdr.estimation._learners import (
     CATALOGUE,
     check_library,
@@ -84,6 +85,7 @@ __all__ = [
     "native_threads",
     "threads_per_fit",
     "worker_count",
+    "ALERT_P",
     "BLEND_MEANINGS",
     "FEW_CLUSTERS",
     "accepts_sample_weight",
@@ -100,6 +102,7 @@ __all__ = [
     "DEFAULT_DIGITS",
     "DIRECTIONS",
     "Diagnostics",
+    "FoldCheck",
     "ESTIMATOR_PARAMS",
     "EstimatorRow",
     "INTERVALS",
@@ -114,6 +117,7 @@ __all__ = [
     "Setting",
     "blended_propensity",
     "check_cluster",
+    "check_folds",
     "check_library",
     "check_value",
     "close_match",

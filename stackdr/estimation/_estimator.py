@@ -8,11 +8,10 @@ from __future__ import annotations
 
 import time
 from dataclasses import dataclass
-from functools import partial
 
 import numpy as np
 import pandas as pd
-from sklearn.base import BaseEstimator, clone
+from sklearn.base import BaseEstimator
 
 from stackdr.core import (
     Target,
@@ -34,6 +33,7 @@ from stackdr.estimation._analysis import (
 )
 from stackdr.estimation._crossfit import CrossFitResult, cross_fit
 from stackdr.estimation._data import PreparedData, prepare_data
+from stackdr.estimation._fold_check import check_folds, refit_replicates
 from stackdr.estimation._learners import (
     check_library,
     default_outcome_library,
@@ -48,7 +48,7 @@ from stackdr.estimation._parallel import (
 )
 from stackdr.estimation._results import BlendResult, EstimatorRow
 from stackdr.estimation._settings import settings_record, validate_params
-from stackdr.inference import InferenceSettings, refit_bootstrap, reweighting_bootstrap
+from stackdr.inference import InferenceSettings, reweighting_bootstrap
 from stackdr.search import (
     STACKED_PROPENSITY,
     SearchSettings,
@@ -160,6 +160,8 @@ class BlendEstimator(BaseEstimator):
         bootstrap, which also refits every learner (expensive, fully honest).
     interval : {"percentile", "basic"}
         Bootstrap interval type.
+    calibration_refits : int
+        Refit replicates that widen the reweighting bootstrap by their paired spread ratio.
     chunk_size : int, optional
         Replicates per batched matrix product (default: sized to bound memory); results do not
         depend on it.
@@ -204,6 +206,7 @@ class BlendEstimator(BaseEstimator):
         bootstrap: int = 1000,
         bootstrap_kind: str = "multinomial",
         interval: str = "percentile",
+        calibration_refits: int = 0,
         chunk_size: int | None = None,
         seed: int = 0,
         n_jobs: int | None = 1,
@@ -231,6 +234,7 @@ class BlendEstimator(BaseEstimator):
         self.bootstrap = bootstrap
         self.bootstrap_kind = bootstrap_kind
         self.interval = interval
+        self.calibration_refits = calibration_refits
         self.chunk_size = chunk_size
         self.seed = seed
         self.n_jobs = n_jobs
@@ -468,25 +472,13 @@ class BlendEstimator(BaseEstimator):
             t1 = time.perf_counter()
             settings = self.inference_settings()
             if self.bootstrap_kind == "refit":
-                if not np.isscalar(self.folds):
-                    raise InputError(
-                        "the refit bootstrap needs generated folds, not fixed fold labels"
-                    )
-                # --- backend/cluster: replicates go to the cluster; the clone they carry has no
-                # client (a client does not travel to workers) and runs its fits in place.
-                params = {**self.get_params(deep=False), "backend": None, "cluster": None}
-                local = clone(type(self)(**params))
-                with parallel_backend(self.backend, self.cluster, self.n_jobs or 1):
-                    boot = refit_bootstrap(
-                        settings,
-                        result,
-                        partial(local._fit_sample, target),
-                        n_jobs=dask_jobs(self.n_jobs) if self.backend == "dask" else None,
-                    )
+                boot = refit_replicates(self, target, settings, result)
             else:
                 boot = reweighting_bootstrap(settings, result)
             result.attach_bootstrap(boot)
             timings["bootstrap"] = time.perf_counter() - t1
+        if bootstrap:  # not inside a refit replicate
+            result.fold_check = check_folds(result, self, target)
         return result
 
     def inference_settings(self) -> InferenceSettings:

@@ -136,6 +136,9 @@ class BlendResult:
     crossfit, analysis, data, target : the ingredients (out-of-fold predictions, pair tables,
         losses, validated data).
     bootstrap : inference.BootstrapResult or None
+    fold_check : FoldCheck or None
+        Whether the cross-fitting folds agree (Cochran's Q at the target-aimed nuisances), and
+        the between-fold variance added to the bootstrap with ``between_fold_variance``.
     created_utc : str
         When the result was made (UTC, ISO 8601 to the second), for provenance.
 
@@ -159,6 +162,7 @@ class BlendResult:
     settings: dict
     timings: dict = field(default_factory=dict)
     bootstrap: object = None
+    fold_check: object = None
     created_utc: str = field(default_factory=utc_now)
 
     # ------------------------------------------------------------------ tables
@@ -398,6 +402,7 @@ class BlendResult:
                 any(row.se_method == "wald" for row in self.estimators),
             ),
             units=units_sentence(self.target.name, outcome_label),
+            fold_check="" if self.fold_check is None else self.fold_check.sentence(),
             digits=digits,
         )
 

@@ -285,6 +285,15 @@ _TABLE = (
     ),
     Setting("interval", "percentile", "text", "bootstrap interval type", INTERVALS),
     Setting(
+        "calibration_refits",
+        0,
+        "whole",
+        "refit replicates that calibrate the reweighting bootstrap (0: none): SEs and intervals "
+        "widen by their spread's ratio to the reweighting replicates on the same row draws",
+        low=0,
+        metavar="M",
+    ),
+    Setting(
         "chunk_size",
         None,
         "whole",

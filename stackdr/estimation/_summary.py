@@ -101,6 +101,8 @@ class ResultSummary:
         How the intervals were made and which SE stands beside them.
     units : str
         The units of the numbers.
+    fold_check : str
+        Whether the cross-fitting folds agree (the between-fold check), one or two sentences.
     digits : int
         Significant digits of the largest value of each numeric column.
     """
@@ -116,6 +118,7 @@ class ResultSummary:
     intervals: str = ""
     units: str = ""
     digits: int = DEFAULT_DIGITS
+    fold_check: str = ""
 
     def as_frame(self) -> pd.DataFrame:
         """The comparison table (a copy).
@@ -147,7 +150,7 @@ class ResultSummary:
         )
 
     def _footer(self) -> list:
-        return [self.intervals, self.units, *self.notes]
+        return [self.intervals, self.fold_check, self.units, *self.notes]
 
     def as_text(self) -> str:
         """The summary as aligned plain text, lines within 100 characters.

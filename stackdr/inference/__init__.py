@@ -11,18 +11,30 @@ from stackdr.inference._common import (
     resample_rows,
     summarise_replicates,
 )
+from stackdr.inference._fold_spread import (
+    FoldSpread,
+    fold_spread,
+    paired_refit_ratio,
+    top_row_share,
+    widen_intervals,
+)
 from stackdr.inference._refit import refit_bootstrap
 from stackdr.inference._reweighting import replicate_features, reweighting_bootstrap
 
 __all__ = [
     "REWEIGHTING_KINDS",
     "BootstrapResult",
+    "FoldSpread",
     "InferenceSettings",
     "draw_row_weights",
+    "fold_spread",
+    "paired_refit_ratio",
     "refit_bootstrap",
     "replicate_features",
     "replicate_generators",
     "resample_rows",
     "reweighting_bootstrap",
     "summarise_replicates",
+    "top_row_share",
+    "widen_intervals",
 ]

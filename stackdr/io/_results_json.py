@@ -182,6 +182,29 @@ def _diagnostics(result: BlendResult) -> dict:
         "learners": learners,
         "failed_learners": failed,
         "notes": [str(note) for note in data.notes],
+        "fold_check": _fold_check(result.fold_check),
+    }
+
+
+def _fold_check(check) -> dict | None:
+    if check is None:
+        return None
+    spread = check.spread
+    return {
+        "folds": int(spread.folds),
+        "estimates": plain(spread.estimates),
+        "standard_errors": plain(spread.standard_errors),
+        "q": plain(spread.q),
+        "dispersion": plain(spread.dispersion),
+        "p_value": plain(spread.p_value),
+        "between_variance": plain(spread.between_variance),
+        "top_row_share": plain(check.top_row_share),
+        "alert": bool(check.alert),
+        "corrected": bool(check.corrected),
+        "added_variance": {str(k): plain(v) for k, v in check.added_variance.items()},
+        "uncorrected_se": {str(k): plain(v) for k, v in check.uncorrected_se.items()},
+        "refit_ratios": {str(k): plain(v) for k, v in check.refit_ratios.items()},
+        "sentence": check.sentence(),
     }
 
 

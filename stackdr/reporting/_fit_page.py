@@ -374,7 +374,8 @@ def _bootstrap(r: dict, figs: dict) -> str:
             else " The learner fits are held fixed, so the variability of refitting the "
             "learners is left out; with unstable learners (e.g. unpenalised models on many "
             "features) this can make the interval too narrow, and the refit bootstrap "
-            "(--bootstrap-kind refit) includes it."
+            "(--bootstrap-kind refit) includes it; --calibration-refits M widens the interval "
+            "by M refit replicates run on the same row draws."
         )
     )
     if "bootstrap" in figs:
@@ -394,6 +395,26 @@ def _bootstrap(r: dict, figs: dict) -> str:
         + "."
     )
     return out
+
+
+def _fold_check(r: dict) -> str:
+    """The between-fold check: do the cross-fitting folds agree at the target-aimed nuisances?"""
+    check = r["diagnostics"].get("fold_check")
+    if check is None:
+        return ""
+    out = paragraph(
+        "Between-fold check. Each cross-fitting fold is predicted by learners fitted on the "
+        "other folds, so the estimates on the folds' own rows differ by sampling noise and by "
+        "how much the refitted learners differ. " + check["sentence"],
+        "note" if check["alert"] else "explain",
+    )
+    return out + table(
+        ["fold", "estimate", "influence-function SE"],
+        [
+            [k + 1, est, se]
+            for k, (est, se) in enumerate(zip(check["estimates"], check["standard_errors"]))
+        ],
+    )
 
 
 def _overlap(r: dict, figs: dict) -> str:
@@ -463,7 +484,7 @@ def report_html(results: dict, figures: dict, *, title: str | None = None) -> st
         "pairs": _pairs(r, figures),
         "sensitivity": _sensitivity(r, figures),
         "landscape": _landscape(r, figures),
-        "bootstrap": _bootstrap(r, figures),
+        "bootstrap": _bootstrap(r, figures) + _fold_check(r),
         "overlap": _overlap(r, figures),
         "stability": _stability(r, figures),
         "cautions": _cautions(r),
