@@ -55,14 +55,14 @@ class KnownClassifier(ClassifierMixin, BaseEstimator):
 
 
 class SwingingClassifier(ClassifierMixin, BaseEstimator):
-    """A constant propensity that swings with its training rows: 0.5 + 4 x (mean of the first
+    """A constant propensity that swings with its training rows: 0.5 + 12 x (mean of the first
     covariate over the training rows), clipped to [0.2, 0.8]. Folds' training sets differ, so
     their fitted models differ by far more than the rows' sampling noise moves an estimate
     [construction]."""
 
     def fit(self, X, y):
         self.classes_ = np.array([0, 1])
-        self.p_ = float(np.clip(0.5 + 4 * np.mean(np.asarray(X)[:, 0]), 0.2, 0.8))
+        self.p_ = float(np.clip(0.5 + 12 * np.mean(np.asarray(X)[:, 0]), 0.2, 0.8))
         return self
 
     def predict_proba(self, X):

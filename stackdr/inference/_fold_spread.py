@@ -27,6 +27,8 @@ from dataclasses import dataclass, replace
 import numpy as np
 from scipy.stats import chi2
 
+from stackdr.core import estimate_from_rows
+
 #: Share of rows whose squared influence values :func:`top_row_share` adds up.
 TOP_ROWS = 0.01
 
@@ -63,7 +65,13 @@ class FoldSpread:
         return int(self.estimates.size)
 
 
-def fold_spread(H: np.ndarray, d: np.ndarray, labels: np.ndarray) -> FoldSpread:
+def fold_spread(
+    H: np.ndarray,
+    d: np.ndarray,
+    labels: np.ndarray,
+    sample_weight: np.ndarray | None = None,
+    cluster_codes: np.ndarray | None = None,
+) -> FoldSpread:
     """Cochran's Q and the DerSimonian-Laird tau^2 over cross-fitting folds.
 
     Parameters
@@ -74,6 +82,10 @@ def fold_spread(H: np.ndarray, d: np.ndarray, labels: np.ndarray) -> FoldSpread:
         Row denominators.
     labels : ndarray (n,)
         Fold of each row (0 .. K - 1).
+    sample_weight, cluster_codes : ndarray (n,), optional
+        Sampling weights and cluster codes: each fold's estimate is then the weighted one and
+        its SE the sandwich or cluster-robust one of ``estimate_from_rows`` (folds keep clusters
+        whole, so each fold's clusters are its own).
 
     Returns
     -------
@@ -96,10 +108,15 @@ def fold_spread(H: np.ndarray, d: np.ndarray, labels: np.ndarray) -> FoldSpread:
     se = np.empty(folds.size)
     for i, fold in enumerate(folds):
         rows = labels == fold
-        h, dd = H[rows], d[rows]
-        theta[i] = h.sum() / dd.sum()
-        influence = (h - theta[i] * dd) / dd.mean()
-        se[i] = np.sqrt(np.mean(influence**2) / rows.sum())
+        weights = None if sample_weight is None else np.asarray(sample_weight)[rows]
+        codes = None
+        if cluster_codes is not None:
+            codes = np.unique(np.asarray(cluster_codes)[rows], return_inverse=True)[1]
+            if codes.max() < 1:  # one cluster in the fold: no cluster-robust SE
+                theta[i], se[i] = np.nan, np.nan
+                continue
+        fit = estimate_from_rows(H[rows], d[rows], weights, codes)
+        theta[i], se[i] = fit.estimate, fit.se
     K = folds.size
     if K < 2 or not np.all(se > 0):
         return FoldSpread(theta, se, 0.0, float("nan"), float("nan"), 0.0)

@@ -74,7 +74,7 @@ def test_warning_fires_on_unstable_learners_and_not_on_stable_ones():
         warnings.simplefilter("always")
         stable = _fit(unstable=False)
     assert not stable.fold_check.alert and _unstable_warnings(record) == []
-    assert "agree within sampling noise" in _text(stable)
+    assert "no disagreement between the fold estimates beyond sampling noise" in _text(stable)
     assert "disagree more than sampling noise explains" in _text(unstable)
 
 

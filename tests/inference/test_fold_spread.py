@@ -118,3 +118,27 @@ def test_paired_refit_ratio_cancels_the_shared_draws():
     assert ratio == pytest.approx(np.sqrt(1.25), rel=0.03)
     assert paired_refit_ratio(np.array([np.nan, 2.0]), np.array([5.0, 1.0]), 0.0) == 2.0
     assert np.isnan(paired_refit_ratio(np.ones(2), np.zeros(2), 0.0))
+
+
+def test_weighted_and_clustered_fold_estimates_use_the_fits_own_conventions():
+    # Unit sampling weights and one row per cluster change nothing but the cluster factor
+    # G / (G - 1) within each fold (Cameron & Miller 2015, common practice); integer weights
+    # give each fold the estimate of its rows duplicated.
+    from stackdr.core import estimate_from_rows
+
+    rng = np.random.default_rng(3)
+    H, d = rng.normal(2, 1, 40), np.ones(40)
+    labels = np.repeat([0, 1, 2, 3], 10)
+    plain = fold_spread(H, d, labels)
+    ones = fold_spread(H, d, labels, sample_weight=np.ones(40))
+    np.testing.assert_allclose(ones.estimates, plain.estimates)
+    np.testing.assert_allclose(ones.standard_errors, plain.standard_errors)
+    clustered = fold_spread(H, d, labels, cluster_codes=np.arange(40))
+    np.testing.assert_allclose(clustered.standard_errors, plain.standard_errors * np.sqrt(10 / 9))
+    w = rng.integers(1, 4, 40).astype(float)
+    weighted = fold_spread(H, d, labels, sample_weight=w)
+    first = estimate_from_rows(np.repeat(H[:10], w[:10].astype(int)), np.ones(int(w[:10].sum())))
+    assert weighted.estimates[0] == pytest.approx(first.estimate)
+    # A fold holding a single cluster has no cluster-robust SE, so Q is not computed.
+    one_cluster = fold_spread(H, d, labels, cluster_codes=labels)
+    assert np.isnan(one_cluster.p_value)
