@@ -194,6 +194,7 @@ def report(seed: int) -> pd.DataFrame:
 
 
 def main() -> None:
+    global RESULTS
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--seed", type=int, default=2027)
     parser.add_argument("--jobs", type=int, default=1)
@@ -207,7 +208,6 @@ def main() -> None:
         "the current code)",
     )
     args = parser.parse_args()
-    global RESULTS
     RESULTS = args.folder
     if not args.report:
         run(args.seed, args.jobs, args.reps_scale)
