@@ -57,6 +57,15 @@ NOT_SEPARATED = (
 )
 
 
+DEFAULT_WEIGHTING = (
+    "Default weighting (riesz blend with the prediction-loss stacked propensity column, "
+    "tie-break c = 1), chosen by paired Monte Carlo studies (README, 'Which default'): it gains "
+    "most over prediction-loss stacking with flexible libraries and good overlap; where every "
+    "learner of a side is a misspecified model of one kind (a shared bias) or overlap is poor, "
+    "the studies found it a few percent behind, so prefer the prediction-loss stacking row there."
+)
+
+
 def blend_note(main, other) -> str:
     """Why a row (``other``, an :class:`EstimatorRow`) with another blend than the headline
     row (``main``) differs from it."""
@@ -199,9 +208,17 @@ class BlendResult:
     @property
     def notes(self) -> list:
         """Sentences a reader of the comparison needs: whether the data separate the
-        target-aimed from the prediction-loss weights, and why rows with another blend differ
-        from the headline."""
+        target-aimed from the prediction-loss weights, what the studies say of the default
+        weighting (when it is in use), and why rows with another blend differ from the
+        headline."""
         notes = [NOT_SEPARATED] if self.at_prediction_loss_weights else []
+        used = self.settings
+        if (
+            used.get("blend") == "riesz"
+            and used.get("stacked_propensity")
+            and used.get("tie_break_scale") == 1.0
+        ):
+            notes.append(DEFAULT_WEIGHTING)
         main = self.estimators[0]
         notes += [blend_note(main, row) for row in self.estimators[1:] if row.blend != main.blend]
         return notes
