@@ -10,6 +10,7 @@ work ran: every task carries its own seeds and results are collected in task ord
 
 from __future__ import annotations
 
+import functools
 import os
 from collections.abc import Iterator
 from contextlib import contextmanager, nullcontext
@@ -65,10 +66,11 @@ def check_cluster(backend: str | None, cluster: Any) -> None:
         raise InputError("cluster scheduler address is empty")
 
 
+@functools.cache
 def _loss_aware_dask_backend() -> str:
-    """Register (once) and name joblib's dask backend with one change: a task that fails in
-    dask itself (not in our code), e.g. after its workers died too often, is reported to joblib
-    as an error. joblib 1.6's dask backend only stores such a failure and never tells the
+    """Register (once per process) and name joblib's dask backend with one change: a task that
+    fails in dask itself (not in our code), e.g. after its workers died too often, is reported to
+    joblib as an error. joblib 1.6's dask backend only stores such a failure and never tells the
     waiting ``Parallel`` call, which then waits forever."""
     import asyncio
 

@@ -2,6 +2,7 @@
 exactly the results of a local run with the same seeds."""
 
 import os
+from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
@@ -26,14 +27,21 @@ distributed = pytest.importorskip("distributed")
 TIMING = ["simulate_seconds", "seconds", "estimator_seconds"]
 
 
-@pytest.fixture(scope="module")
-def client():
-    # Worker processes, not threads: the weight search caches compiled convex programs per
-    # process, and tasks must travel (pickled) as they would to a remote cluster.
+@contextmanager
+def _two_workers():
+    """A client of a fresh local cluster of two single-threaded worker processes. Processes,
+    not threads: the weight search caches compiled convex programs per process, and tasks must
+    travel (pickled) as they would to a remote cluster."""
     cluster = distributed.LocalCluster(
         n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
     )
     with cluster, distributed.Client(cluster, set_as_default=False) as c:
+        yield c
+
+
+@pytest.fixture(scope="module")
+def client():
+    with _two_workers() as c:
         yield c
 
 
@@ -174,12 +182,7 @@ def test_a_worker_killed_mid_run_has_its_task_rerun(tmp_path):
     # after the marker exists, so its learner fits normally). A job whose task keeps killing
     # workers stops with one line (next test).
     marker = tmp_path / "killed-once"
-    with (
-        distributed.LocalCluster(
-            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
-        ) as cluster,
-        distributed.Client(cluster, set_as_default=False) as c,
-    ):
+    with _two_workers() as c:
         remote = _lossy_fit(marker, True, backend="dask", cluster=c)
     assert marker.exists()
     local = _lossy_fit(marker, True)
@@ -193,12 +196,7 @@ def test_a_worker_killed_mid_run_has_its_task_rerun(tmp_path):
 
 @pytest.mark.slow
 def test_a_task_that_keeps_killing_workers_stops_the_job_with_one_line(tmp_path):
-    with (
-        distributed.LocalCluster(
-            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
-        ) as cluster,
-        distributed.Client(cluster, set_as_default=False) as c,
-    ):
+    with _two_workers() as c:
         with pytest.raises(WorkerLostError, match="a dask worker died each time it ran task"):
             _lossy_fit(tmp_path / "always", False, backend="dask", cluster=c)
 
@@ -221,12 +219,7 @@ def test_a_study_whose_worker_is_killed_equals_the_local_run(tmp_path):
     # The lost replicate is rerun on another worker; every replicate is stored once.
     replicate = _ReplicateExitsWorkerOnce(make_replicate("parametric"), str(tmp_path / "m"))
     settings = {"designs": ["lunceford-davidian"], "seed": 3, "progress": False}
-    with (
-        distributed.LocalCluster(
-            n_workers=2, processes=True, threads_per_worker=1, dashboard_address=":0"
-        ) as cluster,
-        distributed.Client(cluster, set_as_default=False) as c,
-    ):
+    with _two_workers() as c:
         run_study(
             tmp_path / "d.sqlite",
             ns=150,
