@@ -31,6 +31,7 @@ from stackdr.estimation._analysis import (
     search_table,
     stacked_propensity_loss,
 )
+from stackdr.estimation._contrast import contrast_test
 from stackdr.estimation._crossfit import CrossFitResult, cross_fit
 from stackdr.estimation._data import PreparedData, prepare_data
 from stackdr.estimation._fold_check import check_folds, refit_replicates
@@ -125,9 +126,9 @@ class BlendEstimator(BaseEstimator):
         Among weights within ``tie_break_scale`` standard errors of the optimum, take those
         closest to the prediction-loss stacking weights.
     tie_break_scale : float
-        The constant c of the tolerance c x (SE of the pair contrast attaining the range); 1 by
-        default, chosen with ``stacked_propensity`` on paired Monte Carlo evidence (README,
-        "Which default").
+        The constant c of the tolerance c x (SE of the pair contrast attaining the range); 0.5
+        by default, chosen with ``stacked_propensity`` and ``contrast_z`` on paired Monte Carlo
+        evidence (README, "Which default").
     stacked_propensity : bool
         With the riesz blend, add the prediction-loss stacked propensity (the probability-scale
         blend of the propensity learners at their prediction-loss stacking weights) as one more
@@ -140,6 +141,16 @@ class BlendEstimator(BaseEstimator):
         the probability blend the stacked propensity already is the point alpha = stacking
         weights of the search), and so is a continuous treatment (whose weight side is linear
         in E[A | X]) or a single propensity learner.
+    contrast_z : float
+        The contrast test (default 2; 0 turns it off): the headline keeps the searched weights
+        only when their estimate differs from the prediction-loss stacking estimate by more than
+        ``contrast_z`` paired influence-function SEs; otherwise it uses prediction-loss
+        stacking's nuisances. The searched weights stay in the table as the row
+        ``"target-aimed, no contrast test"``. The bootstrap reruns the test in every replicate
+        (its SE held at the full-sample value). It applies when prediction-loss stacking's
+        nuisances are weights of the search's blend: the riesz blend with
+        ``stacked_propensity``, the probability blend, a continuous treatment or one propensity
+        learner.
     directions : {"all", "credible"}
         Learners whose swaps define the perturbations: all of them (the published method), or
         only those whose out-of-fold loss is within ``direction_tolerance`` (relative) of the
@@ -195,8 +206,9 @@ class BlendEstimator(BaseEstimator):
         blend: str = "riesz",
         criterion: str = "mixed",
         tie_break: bool = True,
-        tie_break_scale: float = 1.0,
+        tie_break_scale: float = 0.5,
         stacked_propensity: bool = True,
+        contrast_z: float = 2.0,
         directions: str = "all",
         direction_tolerance: float = 0.25,
         clip: float = 0.01,
@@ -225,6 +237,7 @@ class BlendEstimator(BaseEstimator):
         self.tie_break = tie_break
         self.tie_break_scale = tie_break_scale
         self.stacked_propensity = stacked_propensity
+        self.contrast_z = contrast_z
         self.directions = directions
         self.direction_tolerance = direction_tolerance
         self.clip = clip
@@ -345,6 +358,7 @@ class BlendEstimator(BaseEstimator):
             blend=self.blend,
             tie_break=self.tie_break,
             tie_break_scale=float(self.tie_break_scale),
+            contrast_z=float(self.contrast_z),
         )
 
     def prepare_analysis(
@@ -433,6 +447,9 @@ class BlendEstimator(BaseEstimator):
             tolerance=tolerance,
             masks=an.masks,
         )
+        contrast, value = contrast_test(
+            an, search, settings.contrast_z, cf.propensity_kind == "classifier"
+        )
         selections = comparison_weights(
             WeightContext(
                 an.Psi,
@@ -445,6 +462,8 @@ class BlendEstimator(BaseEstimator):
                 settings,
                 an.pair_se[: an.base_learners],
                 an.stacked,
+                value,
+                contrast.tolerance,
             )
         )
         rows = [
@@ -462,11 +481,12 @@ class BlendEstimator(BaseEstimator):
             estimate=main.estimate,
             se=main.se,
             level=self.level,
-            alpha=pd.Series(search.alpha, index=an.propensity_names, name="propensity weight"),
-            beta=pd.Series(search.beta, index=cf.outcome_names, name="outcome weight"),
+            alpha=pd.Series(main.alpha, index=an.propensity_names, name="propensity weight"),
+            beta=pd.Series(main.beta, index=cf.outcome_names, name="outcome weight"),
             estimators=rows,
             settings=settings_record(self.get_params(deep=False)),
             timings=timings,
+            contrast=contrast,
         )
         if bootstrap and self.bootstrap:
             t1 = time.perf_counter()

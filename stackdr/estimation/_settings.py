@@ -220,7 +220,7 @@ _TABLE = (
     ),
     Setting(
         "tie_break_scale",
-        1.0,
+        0.5,
         "number",
         "tie-break tolerance in standard errors",
         low=0,
@@ -232,6 +232,15 @@ _TABLE = (
         "switch",
         "add the prediction-loss stacked propensity as one more propensity learner of the weight "
         "search (riesz blend)",
+    ),
+    Setting(
+        "contrast_z",
+        2.0,
+        "number",
+        "keep the target-aimed weights only when their estimate differs from prediction-loss "
+        "stacking's by more than Z paired SEs (0: always keep them)",
+        low=0,
+        metavar="Z",
     ),
     Setting(
         "directions", "all", "text", "learners whose swaps define the perturbations", DIRECTIONS

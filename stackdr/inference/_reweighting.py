@@ -15,8 +15,10 @@ weights around the full-sample weights; both errors are second order in the repl
 change. With the stacked propensity column (setting ``stacked_propensity``), that column's row of a
 replicate's pair table is the same expansion at outcome weights e_j (the stacked propensity of the
 replicate is the blend at the replicate's stacking weights; recomputing it exactly would need work
-over all n rows per replicate). The tie-break tolerance and the credible-direction masks are held at
-their full-sample values. Non-riesz blends need phi(alpha) from the weighted rows in every
+over all n rows per replicate). The tie-break tolerance, the contrast test's threshold z x SE and
+the credible-direction masks are held at their full-sample values; the contrast test itself
+(search estimate against the stacking estimate, both on the replicate's pair table) reruns in
+every replicate. Non-riesz blends need phi(alpha) from the weighted rows in every
 replicate; this is exact, not approximated: phi at the lattice the search scans is computed for the
 whole chunk at once (row weights enter phi linearly, so it is one matrix product per repeat and
 component, :func:`~stackdr.pairtable.lattice_phi`), and every other call goes through
@@ -197,7 +199,7 @@ def _stacked_rows(s: np.ndarray, sl: dict, K1: int, K2: int, alphas, alpha0) -> 
 # ----------------------------------------------------------------------------- one chunk
 
 
-def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
+def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus, contrast_tol=None):
     """Run replicates ``indices``: row weights (one per cluster with clusters), batched
     moments, searches, estimates. Sampling weights are in the features and the inputs."""
     settings, masks = an.settings, an.masks
@@ -247,7 +249,6 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
             tolerance=taus,
             masks=masks,
         )
-        alphas[col], betas[col] = search.alpha, search.beta
         moved[col] = any(
             bool(r.details.get("moved", False))
             for k, r in search.records.items()
@@ -264,7 +265,11 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
             settings,
             pair_se,
             an.stacked,
+            _replicate_value(Psi, phi_fn),
+            contrast_tol,
         )
+        # The headline's weights (after the contrast test, when it is on) are the recorded ones.
+        alphas[col], betas[col] = ctx.contrast[:2]
         for comparison in comparisons:
             if comparison.replicate != "weights":
                 continue
@@ -294,6 +299,14 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus):
             "search": search_s,
         },
     )
+
+
+def _replicate_value(Psi, phi_fn):
+    """The estimate at weights (alpha, beta) over the replicate's search columns: bilinear in
+    the pair table for the riesz blend, phi(alpha) beta otherwise."""
+    if phi_fn is None:
+        return lambda alpha, beta: float(alpha @ Psi @ beta)
+    return lambda alpha, beta: float(phi_fn(np.asarray(alpha)[None])[0] @ beta)
 
 
 def _replicate_lattice(inputs, settings, W, K1: int, K2: int):
@@ -363,12 +376,15 @@ def reweighting_bootstrap(
     if chunk_size is None:
         chunk_size = int(max(1, min(B, 256, memory_budget // (8 * n))))
     taus = _fixed_tolerances(result) if an.settings.tie_break else None
+    contrast = getattr(result, "contrast", None)
+    contrast_tol = None if contrast is None else contrast.tolerance
     names = [row.name for row in result.estimators]
     meta = {"classifier": cf.propensity_kind == "classifier"}
     gens = replicate_generators(settings.seed, B)
     chunks = [list(range(s, min(B, s + chunk_size))) for s in range(0, B, chunk_size)]
     run = Parallel(n_jobs=settings.n_jobs, return_as="generator")(
-        delayed(_chunk)(an, features, an.inputs, meta, gens, idx, kind, taus) for idx in chunks
+        delayed(_chunk)(an, features, an.inputs, meta, gens, idx, kind, taus, contrast_tol)
+        for idx in chunks
     )
     if settings.progress:
         from tqdm.auto import tqdm

@@ -356,6 +356,9 @@ def result_to_dict(
         "sensitivities": _sensitivities(result),
         "pseudo_risk": plain(result.pseudo_risk),
         "tie_break": _tie_break(result),
+        "contrast_test": None
+        if getattr(result, "contrast", None) is None
+        else plain(result.contrast.record(), "contrast_test"),
         "solver_records": [_solver_step(k, rec) for k, rec in result.search.records.items()],
         "diagnostics": _diagnostics(result),
         "bootstrap": _bootstrap(result),

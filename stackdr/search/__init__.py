@@ -14,10 +14,12 @@ from stackdr.search._comparisons import (
     PURE,
     SMOOTHED,
     STACKED_PROPENSITY,
+    UNTESTED,
     Comparison,
     WeightContext,
     active_comparisons,
     comparison_weights,
+    contrast_applies,
 )
 from stackdr.search._lattice import lattice_resolution, lattice_size, simplex_lattice
 from stackdr.search._polish import grid_refine
@@ -48,10 +50,12 @@ __all__ = [
     "PURE",
     "SMOOTHED",
     "STACKED_PROPENSITY",
+    "UNTESTED",
     "Comparison",
     "WeightContext",
     "active_comparisons",
     "comparison_weights",
+    "contrast_applies",
     "SearchSettings",
     "SolveResult",
     "WeightSearch",

@@ -24,6 +24,8 @@ from stackdr.search._selection import (
 )
 
 MAIN = "target-aimed stacking"
+#: The search's own weights before the contrast test (shown when the test is on).
+UNTESTED = "target-aimed, no contrast test"
 PURE = "target-aimed, no tie-break"
 PLS = "prediction-loss stacking"
 BEST = "best-predicting pair"
@@ -61,6 +63,13 @@ class WeightContext:
     stacked : bool
         Whether the last row of ``Psi`` is the prediction-loss stacked propensity (the search's
         extra column) rather than a learner of the library.
+    value : callable, optional
+        ``value(alpha, beta) -> float``: the estimate at weights over the search's columns and
+        the search's blend, on this sample. Needed only by the contrast test.
+    contrast_tolerance : float, optional
+        z x (paired SE of the difference between the search's estimate and the prediction-loss
+        stacking estimate), from the full sample (held there in every bootstrap replicate, as
+        the tie-break tolerances are). None: no contrast test.
     """
 
     Psi: np.ndarray
@@ -73,6 +82,38 @@ class WeightContext:
     settings: SearchSettings
     pair_se: np.ndarray | None = None
     stacked: bool = False
+    value: Callable | None = None
+    contrast_tolerance: float | None = None
+
+    @property
+    def stacking_weights(self) -> tuple[np.ndarray, np.ndarray]:
+        """Prediction-loss stacking's nuisances as weights over the search's columns at the
+        search's blend: the stacked column's vertex when there is one, else the stacking weights
+        themselves (exact under the probability blend, a continuous treatment or one learner;
+        :func:`contrast_applies` says when)."""
+        if self.stacked:
+            return np.eye(self.Psi.shape[0])[-1], self.stack_beta
+        return self.stack_alpha, self.stack_beta
+
+    @cached_property
+    def contrast(self) -> tuple[np.ndarray, np.ndarray, float]:
+        """The contrast test: ``(alpha, beta, difference)``. The search's weights when their
+        estimate differs from prediction-loss stacking's by more than ``contrast_tolerance``,
+        else the stacking weights (difference: search minus stacking; nan without a test).
+
+        This is a Hausman-type test between an estimator that is efficient when every learner is
+        good or all share one bias (prediction-loss stacking) and one aimed at the target's
+        bias (the search): the search moves the estimate only when the move is larger than
+        its paired sampling noise.
+        """
+        alpha, beta = self.search.alpha, self.search.beta
+        if self.contrast_tolerance is None or self.value is None:
+            return alpha, beta, float("nan")
+        a0, b0 = self.stacking_weights
+        difference = float(self.value(alpha, beta) - self.value(a0, b0))
+        if abs(difference) > self.contrast_tolerance:
+            return alpha, beta, difference
+        return a0, b0, difference
 
     @property
     def base_Psi(self) -> np.ndarray:
@@ -152,8 +193,27 @@ def _smoothed(ctx: WeightContext):
     return u, v
 
 
+def contrast_applies(settings: SearchSettings, stacked: bool, classifier: bool, K1: int) -> bool:
+    """Whether prediction-loss stacking's nuisances are weights of the search's blend, so that
+    the contrast test can fall back on them: the stacked column under the riesz blend, the
+    probability blend, a continuous treatment (linear weight side) or one propensity learner.
+    Not under the logit blend, nor the riesz blend over several classifiers without the stacked
+    column."""
+    if settings.contrast_z <= 0:
+        return False
+    if settings.blend == "probability" or stacked or K1 == 1:
+        return True
+    return settings.blend == "riesz" and not classifier
+
+
 COMPARISONS: tuple[Comparison, ...] = (
-    Comparison(MAIN, "target-aimed", lambda ctx: (ctx.search.alpha, ctx.search.beta)),
+    Comparison(MAIN, "target-aimed", lambda ctx: ctx.contrast[:2]),
+    Comparison(
+        UNTESTED,
+        "target-aimed",
+        lambda ctx: (ctx.search.alpha, ctx.search.beta),
+        shown=lambda settings: settings.contrast_z > 0,
+    ),
     Comparison(
         PURE,
         "target-aimed",

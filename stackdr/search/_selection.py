@@ -25,6 +25,10 @@ class SearchSettings:
     tie_break : whether to move to the prediction-loss stacking weights within the noise floor.
     tie_break_scale : c, the tolerance in units of the noise floor (a standard error).
     resolution : lattice resolution for grid-based searches (None: solver default).
+    contrast_z : z of the contrast test (0: off). The search's weights are kept only when their
+        estimate differs from the prediction-loss stacking estimate by more than z paired
+        standard errors; otherwise the stacking nuisances are used (see
+        :class:`~stackdr.search.WeightContext`).
     """
 
     criterion: str = "mixed"
@@ -32,6 +36,7 @@ class SearchSettings:
     tie_break: bool = True
     tie_break_scale: float = 1.0
     resolution: int | None = None
+    contrast_z: float = 0.0
 
 
 def pseudo_risk(criterion: str, phi_alpha, chi_beta, psi, masks) -> float:

@@ -40,7 +40,14 @@ def test_oracle_learners_receive_the_mass():
     X, A, Y, _ = confounded_data(np.random.default_rng(3), 4000)
     prop, outc = oracle_libraries()
     est = BlendEstimator(
-        "ate", prop, outc, folds=2, outcome_mode="pooled", tie_break=False, bootstrap=0
+        "ate",
+        prop,
+        outc,
+        folds=2,
+        outcome_mode="pooled",
+        tie_break=False,
+        contrast_z=0,
+        bootstrap=0,
     )
     res = est.fit(X, A, Y)
     Psi = res.pair_table.to_numpy()

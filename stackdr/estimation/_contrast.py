@@ -1,0 +1,136 @@
+"""The contrast test between the search's weights and prediction-loss stacking.
+
+The weight search aims the nuisances at the target's bias; prediction-loss stacking (PLS) aims
+them at prediction. When every learner is good, or all share one bias, the search's weights
+buy no bias reduction and only add variance (the riesz blend keeps the heavier inverse weights
+of the worse propensity learners). The contrast test keeps the search's weights only when the
+two estimates differ by more than ``z`` paired standard errors, the standard error of the
+difference of their influence functions on the same rows (a Hausman-type specification test:
+Hausman 1978, Econometrica 46, 1251-1271); otherwise the headline uses PLS's nuisances.
+
+With repeated splits the difference is that of the median-combined estimates and its SE the
+median over repeats. Sampling weights and clusters enter the SE exactly as in every other
+influence-function SE (:func:`~stackdr.core.influence_standard_error`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from stackdr.core import blend_estimate, influence_standard_error
+from stackdr.estimation._analysis import combine_repeats
+from stackdr.search import WeightContext, contrast_applies
+
+#: Headline choices of the test.
+SEARCH_KEPT = "target-aimed weights"
+STACKING_KEPT = "prediction-loss stacking nuisances"
+
+
+@dataclass(frozen=True)
+class ContrastTest:
+    """The full-sample contrast test.
+
+    Attributes
+    ----------
+    z : float
+        The threshold in paired standard errors (setting ``contrast_z``; 0: off).
+    applies : bool
+        Whether the test ran (see :func:`~stackdr.search.contrast_applies`).
+    difference : float
+        Search estimate minus PLS estimate (nan when the test did not run).
+    se : float
+        Paired influence-function SE of that difference.
+    used : str
+        ``SEARCH_KEPT`` or ``STACKING_KEPT`` (``SEARCH_KEPT`` when the test did not run).
+    """
+
+    z: float
+    applies: bool
+    difference: float = float("nan")
+    se: float = float("nan")
+    used: str = SEARCH_KEPT
+
+    @property
+    def tolerance(self) -> float | None:
+        return self.z * self.se if self.applies else None
+
+    @property
+    def statistic(self) -> float:
+        """|difference| / se."""
+        return abs(self.difference) / self.se if self.se > 0 else float("inf")
+
+    def sentence(self, digits_fn=lambda x: f"{x:.4g}") -> str:
+        """One sentence for summaries and reports."""
+        if not self.applies:
+            if self.z <= 0:
+                return ""
+            return (
+                "Contrast test not applicable: prediction-loss stacking's nuisances are not "
+                "weights of this blend, so the target-aimed weights are used as searched."
+            )
+        verdict = (
+            "beyond the threshold, so the headline uses the target-aimed weights"
+            if self.used == SEARCH_KEPT
+            else "within the threshold, so the headline uses the prediction-loss stacking "
+            "nuisances (the data do not show a bias that the target-aimed weights remove)"
+        )
+        return (
+            "Contrast test: the target-aimed weights' estimate minus prediction-loss stacking's "
+            f"is {digits_fn(self.difference)} (paired SE {digits_fn(self.se)}, "
+            f"{self.statistic:.2f} SEs against z = {self.z:g}), {verdict}."
+        )
+
+    def record(self) -> dict:
+        return {
+            "z": self.z,
+            "applies": self.applies,
+            "difference": self.difference,
+            "se": self.se,
+            "used": self.used,
+        }
+
+
+def contrast_test(an, search, z: float, classifier: bool) -> tuple[ContrastTest, object]:
+    """The full-sample test and the ``value`` function the weight context needs.
+
+    Returns ``(test, value)``; ``value(alpha, beta)`` is the combined estimate at the search's
+    blend on the full sample (None when the test does not apply).
+    """
+    settings = an.settings
+    if not contrast_applies(settings, an.stacked, classifier, an.base_learners):
+        return ContrastTest(float(z), False), None
+    blend = settings.blend
+
+    def value(alpha, beta) -> float:
+        fits = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
+        return combine_repeats([f.estimate for f in fits], [f.se for f in fits])[0]
+
+    ctx = WeightContext(
+        an.Psi,
+        search,
+        an.stack_alpha,
+        an.stack_beta,
+        None,
+        None,
+        an.masks,
+        settings,
+        stacked=an.stacked,
+    )
+    a0, b0 = ctx.stacking_weights
+    ses = []
+    for inp in an.inputs:
+        first = blend_estimate(inp, search.alpha, search.beta, blend)
+        second = blend_estimate(inp, a0, b0, blend)
+        ses.append(
+            float(
+                influence_standard_error(
+                    first.influence - second.influence, inp.sample_weight, inp.cluster_codes
+                )
+            )
+        )
+    se = float(np.median(ses))
+    difference = float(value(search.alpha, search.beta) - value(a0, b0))
+    used = SEARCH_KEPT if abs(difference) > z * se else STACKING_KEPT
+    return ContrastTest(float(z), True, difference, se, used), value
