@@ -61,9 +61,10 @@ DEFAULT_WEIGHTING = (
     "Default weighting (riesz blend with the prediction-loss stacked propensity column, "
     "tie-break c = 0.5, contrast test at z = 2), chosen by paired Monte Carlo studies (README, "
     "'Which default'): the target-aimed weights replace prediction-loss stacking only when they "
-    "move the estimate by more than twice the paired SE, so where every learner is good or all "
-    "share one bias the headline is prediction-loss stacking; the gain is largest with flexible "
-    "libraries and large samples."
+    "move the estimate by more than twice its paired SE. Where every learner is good, or all "
+    "share one bias, the headline is then usually prediction-loss stacking's; the gain over it "
+    "is largest with flexible libraries and large samples, where the target-aimed weights "
+    "remove a bias the data can detect."
 )
 
 
