@@ -29,7 +29,7 @@ import numpy as np
 import pandas as pd
 
 from stackdr.reporting import markdown_table
-from stackdr.search import MAIN, PLS, SMOOTHED
+from stackdr.search import MAIN, PLS, SMOOTHED, UNTESTED
 from stackdr.studies import (
     StudyCodeError,
     make_replicate,
@@ -113,6 +113,15 @@ def _fmt(value: float, se: float) -> str:
     return f"{value:+.3g} ({se:.2g}){star}"
 
 
+def _kept_share(results: pd.DataFrame, design: str, n: int) -> float:
+    """Share of replicates whose headline is not PLS's estimate (the contrast test kept the
+    searched weights, and they differ from PLS's)."""
+    cell = results[(results["design"] == design) & (results["n"] == n)]
+    wide = cell.pivot_table(index="rep", columns="estimator", values="estimate")
+    scale = np.maximum(1.0, np.abs(wide[PLS]))
+    return float(np.mean(np.abs(wide[MAIN] - wide[PLS]) > 1e-9 * scale))
+
+
 def report(seed: int) -> pd.DataFrame:
     rows = []
     for label, library, bootstrap, cells in CELLS:
@@ -129,6 +138,13 @@ def report(seed: int) -> pd.DataFrame:
                 }
             except (KeyError, ValueError):  # a study file from before the smoothed row
                 smoothed = {}
+            try:
+                untested = {
+                    (r["design"], r["n"]): r
+                    for _, r in paired_differences(path, UNTESTED, PLS).iterrows()
+                }
+            except (KeyError, ValueError):  # a study file from before the contrast test
+                untested = {}
             results = read_results(path)
             for _, p in paired.iterrows():
                 cell = summary[(summary["design"] == p["design"]) & (summary["n"] == p["n"])]
@@ -156,6 +172,15 @@ def report(seed: int) -> pd.DataFrame:
                     row["smoothed - PLS (MC SE)"] = _fmt(
                         smooth["sq_error_diff"], smooth["sq_error_diff_mcse"]
                     )
+                # The search's own weights before the contrast test, and the share of data
+                # sets where the test kept them (the headline differs from PLS).
+                plain = untested.get((p["design"], p["n"]))
+                if plain is not None:
+                    row["no test - PLS (MC SE)"] = _fmt(
+                        plain["sq_error_diff"], plain["sq_error_diff_mcse"]
+                    )
+                    row["ratio no test"] = round(plain["rmse_a"] / plain["rmse_b"], 3)
+                    row["test kept search"] = round(_kept_share(results, p["design"], p["n"]), 3)
                 if bootstrap:
                     mine = results[
                         (results["estimator"] == MAIN)
@@ -209,6 +234,7 @@ def main() -> None:
     )
     args = parser.parse_args()
     RESULTS = args.folder
+    RESULTS.mkdir(parents=True, exist_ok=True)
     if not args.report:
         run(args.seed, args.jobs, args.reps_scale)
     report(args.seed)

@@ -1,0 +1,76 @@
+"""Contrast-test screening pass on the cached cross-fits of screen.py (harness only).
+
+For every cached replicate (the same cross-fits as every earlier candidate, so still paired):
+the prediction-loss stacking (PLS) estimate, the stacked-column riesz estimates at tie-break
+scales c = 0.25, 0.5, 1 and 2, and the riesz search without the column at c = 0.5, each with
+its influence function, and the paired influence-function SE of each one's difference from PLS.
+``contrast_table.py`` then applies the rules (contrast test at z, positive-part shrinkage) to
+this table and writes the paired comparison with PLS. Usage (environment as in README.md):
+
+    python benchmarks/default_choice/screen_contrast.py --seed 2007   # then --seed 2027
+    python benchmarks/default_choice/contrast_table.py <results>/contrast_seed2007.csv
+"""
+
+from __future__ import annotations
+
+import os
+
+for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_v, "1")
+import argparse  # noqa: E402
+import sys  # noqa: E402
+import warnings  # noqa: E402
+
+import numpy as np  # noqa: E402
+import pandas as pd  # noqa: E402
+import screen  # noqa: E402
+import screen_extra  # noqa: E402
+from stackdr.estimator import MAIN  # noqa: E402
+from stackdr.pairtable import blend_estimate  # noqa: E402
+
+
+def row(cell, rep):
+    data, est0, prepared, target, cf, _, seeds = screen.fit_replicate(cell, rep)
+    design, n, library = screen.CELLS[cell]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        est = screen.make_estimator(data, library, seeds.estimator, blend="riesz")
+        res = est.analyse(prepared, target, cf, bootstrap=False)
+        an = res.analysis
+        inp = an.inputs[0]
+        out = {"cell": cell, "rep": rep, "truth": float(data.truth), "n": inp.n}
+        main_row = next(r for r in res.estimators if r.name == MAIN)
+        fits = {"r05": blend_estimate(inp, main_row.alpha, main_row.beta, "riesz")}
+        for c in (0.25, 0.5, 1.0, 2.0):
+            a, b, _, _, inp_aug = screen_extra.pls_vertex_riesz(an, c)
+            fits[f"v{c:g}"] = blend_estimate(inp_aug, a, b, "riesz")
+            out[f"colw_v{c:g}"] = float(a[-1])
+        K1 = inp_aug.shape[0] - 1
+        pls = blend_estimate(inp_aug, np.eye(K1 + 1)[K1], an.stack_beta, "riesz")
+    out["est_pls"], out["se_pls"] = pls.estimate, pls.se
+    for k, f in fits.items():
+        out[f"est_{k}"], out[f"se_{k}"] = f.estimate, f.se
+        d = f.influence - pls.influence
+        out[f"sed_{k}"] = float(np.sqrt(np.mean(d**2) / inp.n))
+    return out
+
+
+def main():
+    p = argparse.ArgumentParser()
+    p.add_argument("--seed", type=int, default=2007)
+    args = p.parse_args()
+    screen.configure(args.seed)
+    rows = []
+    for cell in screen.CELLS:
+        d = screen.CACHE / cell
+        if not d.exists():
+            continue
+        reps = sorted(int(q.stem) for q in d.glob("*.pkl"))
+        for rep in reps:
+            rows.append(row(cell, rep))
+        print(cell, len(reps), flush=True)
+    pd.DataFrame(rows).to_csv(screen.RESULTS / f"contrast_seed{args.seed}.csv", index=False)
+
+
+if __name__ == "__main__":
+    sys.exit(main())
