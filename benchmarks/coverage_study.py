@@ -10,7 +10,7 @@ prediction-loss stacking.
 Runs in stages of replicates (resumable study file ``results/coverage.sqlite``); the tables are
 rewritten after every stage.
 
-Usage: .venv/bin/python benchmarks/coverage_study.py [--stages 25 50 100 200] [--report]
+Usage: .venv/bin/python benchmarks/coverage_study.py [--stages 25 50 100 200] [--jobs 2] [--report]
 """
 
 from __future__ import annotations
@@ -155,6 +155,7 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--stages", type=int, nargs="+", default=[25, 50, 100, 200])
     parser.add_argument("--report", action="store_true", help="only rewrite the tables")
+    parser.add_argument("--jobs", type=int, default=1, help="replicates in parallel")
     args = parser.parse_args()
     RESULTS.mkdir(parents=True, exist_ok=True)
     if not args.report:
@@ -167,7 +168,7 @@ def main() -> None:
                 reps,
                 replicate,
                 seed=2004,
-                jobs=1,
+                jobs=args.jobs,
                 resume=True,
                 settings={"library": "default", "bootstrap": BOOTSTRAP},
                 progress=False,

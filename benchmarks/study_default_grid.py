@@ -209,7 +209,10 @@ def report(seed: int) -> pd.DataFrame:
         f"Code fingerprint of the package that ran the replicates: {', '.join(codes)} (version "
         "and digest of the package sources, recorded in every study file). Paired squared-error "
         "difference = mean over replicates of (default error^2 - PLS error^2), MC SE = SD of "
-        "the differences / sqrt(pairs); * beyond 2 MC SE; negative favours the default.\n\n"
+        "the differences / sqrt(pairs); * beyond 2 MC SE; negative favours the default. "
+        "`no test`: the search's own weights before the contrast test (the row "
+        "'target-aimed, no contrast test', same fits); `test kept search`: share of data sets "
+        "whose headline is not PLS's estimate.\n\n"
     )
     (RESULTS / f"study_default_grid_seed{seed}.md").write_text(
         head + markdown_table(frame.astype(object).where(frame.notna(), "").astype(str)) + "\n"
