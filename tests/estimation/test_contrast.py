@@ -5,7 +5,8 @@ stacking (PLS) estimate by more than z paired influence-function SEs (a Hausman-
 Hausman 1978, Econometrica 46, 1251-1271). Checked here: the rule flips exactly at the observed
 statistic; z = 0 is the search as before; the fallback is exactly PLS's estimate; the paired SE
 is the paired-difference SE of the exported row terms; the bootstrap reruns the rule; unit
-sampling weights change nothing; the test is skipped, and says so, where PLS's nuisances are not
+sampling weights change nothing and singleton clusters scale the SE by sqrt(n / (n - 1)); the
+test is skipped, and says so, where PLS's nuisances are not
 weights of the blend.
 """
 
@@ -134,3 +135,21 @@ def test_results_file_carries_the_test(base):
     assert record["z"] == 2.0 and record["applies"] is True
     assert record["used"] in ("target-aimed weights", "prediction-loss stacking nuisances")
     assert any(note.startswith("Contrast test:") for note in d["notes"])
+
+
+def test_singleton_clusters_scale_the_se_by_the_small_sample_factor():
+    # With one cluster per row the cluster-robust variance is the row-level one times G / (G - 1)
+    # (the factor of Cameron & Miller 2015), so the paired SE scales by sqrt(n / (n - 1)) and the
+    # difference is unchanged. Both fits use the same user fold labels, so they share folds.
+    n = 800
+    X, A, Y, _ = confounded_data(np.random.default_rng(31), n)
+    folds = np.random.default_rng(2).permutation(np.arange(n) % 5)
+    settings = {"bootstrap": 0, "seed": 4, "tie_break": False, "folds": folds}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        rows = BlendEstimator("ate", PROPENSITY, OUTCOME, **settings).fit(X, A, Y)
+        clustered = BlendEstimator("ate", PROPENSITY, OUTCOME, **settings).fit(
+            X, A, Y, clusters=np.arange(n)
+        )
+    assert clustered.contrast.difference == pytest.approx(rows.contrast.difference, rel=1e-9)
+    assert clustered.contrast.se == pytest.approx(rows.contrast.se * np.sqrt(n / (n - 1)), rel=1e-9)
