@@ -6,8 +6,7 @@ Hausman 1978, Econometrica 46, 1251-1271). Checked here: the rule flips exactly 
 statistic; z = 0 is the search as before; the fallback is exactly PLS's estimate; the paired SE
 is the paired-difference SE of the exported row terms; the bootstrap reruns the rule; unit
 sampling weights change nothing and singleton clusters scale the SE by sqrt(n / (n - 1)); the
-test is skipped, and says so, where PLS's nuisances are not
-weights of the blend.
+test is skipped, and says so, where PLS's nuisances are not weights of the blend.
 """
 
 import warnings
