@@ -102,10 +102,19 @@ def contrast_test(an, search, z: float, classifier: bool) -> tuple[ContrastTest,
     if not contrast_applies(settings, an.stacked, classifier, an.base_learners):
         return ContrastTest(float(z), False), None
     blend = settings.blend
+    # Per-repeat fits by weights: the test's two fits are reused by ``value`` when the weight
+    # context decides the headline, so each is computed once.
+    fits: dict = {}
+
+    def repeat_fits(alpha, beta) -> list:
+        key = (np.asarray(alpha, dtype=float).tobytes(), np.asarray(beta, dtype=float).tobytes())
+        if key not in fits:
+            fits[key] = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
+        return fits[key]
 
     def value(alpha, beta) -> float:
-        fits = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
-        return combine_repeats([f.estimate for f in fits], [f.se for f in fits])[0]
+        rows = repeat_fits(alpha, beta)
+        return combine_repeats([f.estimate for f in rows], [f.se for f in rows])[0]
 
     ctx = WeightContext(
         an.Psi,
@@ -119,17 +128,15 @@ def contrast_test(an, search, z: float, classifier: bool) -> tuple[ContrastTest,
         stacked=an.stacked,
     )
     a0, b0 = ctx.stacking_weights
-    ses = []
-    for inp in an.inputs:
-        first = blend_estimate(inp, search.alpha, search.beta, blend)
-        second = blend_estimate(inp, a0, b0, blend)
-        ses.append(
-            float(
-                influence_standard_error(
-                    first.influence - second.influence, inp.sample_weight, inp.cluster_codes
-                )
+    pairs = zip(repeat_fits(search.alpha, search.beta), repeat_fits(a0, b0), an.inputs)
+    ses = [
+        float(
+            influence_standard_error(
+                first.influence - second.influence, inp.sample_weight, inp.cluster_codes
             )
         )
+        for first, second, inp in pairs
+    ]
     se = float(np.median(ses))
     difference = float(value(search.alpha, search.beta) - value(a0, b0))
     used = SEARCH_KEPT if abs(difference) > z * se else STACKING_KEPT
