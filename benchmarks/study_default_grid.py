@@ -122,6 +122,16 @@ def _kept_share(results: pd.DataFrame, design: str, n: int) -> float:
     return float(np.mean(np.abs(wide[MAIN] - wide[PLS]) > 1e-9 * scale))
 
 
+def _paired_by_cell(path: Path, name: str) -> dict:
+    """Row ``name`` against PLS, by (design, n); empty for a study file from before that row
+    existed (the smoothed selector, the contrast test)."""
+    try:
+        paired = paired_differences(path, name, PLS)
+    except (KeyError, ValueError):
+        return {}
+    return {(r["design"], r["n"]): r for _, r in paired.iterrows()}
+
+
 def report(seed: int) -> pd.DataFrame:
     rows = []
     for label, library, bootstrap, cells in CELLS:
@@ -131,20 +141,8 @@ def report(seed: int) -> pd.DataFrame:
                 continue
             summary = summarise_study(path)
             paired = paired_differences(path, MAIN, PLS)
-            try:
-                smoothed = {
-                    (r["design"], r["n"]): r
-                    for _, r in paired_differences(path, SMOOTHED, PLS).iterrows()
-                }
-            except (KeyError, ValueError):  # a study file from before the smoothed row
-                smoothed = {}
-            try:
-                untested = {
-                    (r["design"], r["n"]): r
-                    for _, r in paired_differences(path, UNTESTED, PLS).iterrows()
-                }
-            except (KeyError, ValueError):  # a study file from before the contrast test
-                untested = {}
+            smoothed = _paired_by_cell(path, SMOOTHED)
+            untested = _paired_by_cell(path, UNTESTED)
             results = read_results(path)
             for _, p in paired.iterrows():
                 cell = summary[(summary["design"] == p["design"]) & (summary["n"] == p["n"])]
