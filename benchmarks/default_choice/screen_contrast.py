@@ -29,13 +29,36 @@ from stackdr.estimator import MAIN  # noqa: E402
 from stackdr.pairtable import blend_estimate  # noqa: E402
 
 
-def row(cell, rep):
+def riesz_analysis(cell, rep):
+    """The cached cross-fit of one replicate, analysed by the harness's riesz estimator (c =
+    0.5): ``(data, result)``."""
     data, est0, prepared, target, cf, _, seeds = screen.fit_replicate(cell, rep)
     design, n, library = screen.CELLS[cell]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         est = screen.make_estimator(data, library, seeds.estimator, blend="riesz")
-        res = est.analyse(prepared, target, cf, bootstrap=False)
+        return data, est.analyse(prepared, target, cf, bootstrap=False)
+
+
+def run_cached(seed: int, row_fn, name: str) -> None:
+    """``row_fn(cell, rep)`` over every cached replicate of every cell of study seed ``seed``;
+    the rows go to ``<results>/name``, rewritten after each cell."""
+    screen.configure(seed)
+    rows = []
+    for cell in screen.CELLS:
+        d = screen.CACHE / cell
+        if not d.exists():
+            continue
+        reps = sorted(int(q.stem) for q in d.glob("*.pkl"))
+        rows += [row_fn(cell, rep) for rep in reps]
+        print(cell, len(reps), flush=True)
+        pd.DataFrame(rows).to_csv(screen.RESULTS / name, index=False)
+
+
+def row(cell, rep):
+    data, res = riesz_analysis(cell, rep)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
         an = res.analysis
         inp = an.inputs[0]
         out = {"cell": cell, "rep": rep, "truth": float(data.truth), "n": inp.n}
@@ -59,17 +82,7 @@ def main():
     p = argparse.ArgumentParser()
     p.add_argument("--seed", type=int, default=2007)
     args = p.parse_args()
-    screen.configure(args.seed)
-    rows = []
-    for cell in screen.CELLS:
-        d = screen.CACHE / cell
-        if not d.exists():
-            continue
-        reps = sorted(int(q.stem) for q in d.glob("*.pkl"))
-        for rep in reps:
-            rows.append(row(cell, rep))
-        print(cell, len(reps), flush=True)
-    pd.DataFrame(rows).to_csv(screen.RESULTS / f"contrast_seed{args.seed}.csv", index=False)
+    run_cached(args.seed, row, f"contrast_seed{args.seed}.csv")
 
 
 if __name__ == "__main__":

@@ -10,9 +10,8 @@ for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_v, "1")
 import argparse, dataclasses, sys, warnings  # noqa: E402
 import numpy as np  # noqa: E402
-import pandas as pd  # noqa: E402
-import screen  # noqa: E402
-from stackdr.estimator import MAIN, Analysis, noise_floor_function  # noqa: E402
+from screen_contrast import riesz_analysis, run_cached  # noqa: E402
+from stackdr.estimator import Analysis, noise_floor_function  # noqa: E402
 from stackdr.pairtable import blend_estimate, pair_rows, pair_standard_errors, pair_table  # noqa: E402
 from stackdr.selection import SearchSettings, run_search  # noqa: E402
 
@@ -20,14 +19,12 @@ M = 50
 
 
 def row(cell, rep):
-    data, est0, prepared, target, cf, _, seeds = screen.fit_replicate(cell, rep)
-    design, n, library = screen.CELLS[cell]
+    data, res = riesz_analysis(cell, rep)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        est = screen.make_estimator(data, library, seeds.estimator, blend="riesz")
-        res = est.analyse(prepared, target, cf, bootstrap=False)
         an = res.analysis
         inp = an.inputs[0]
+        n = inp.n
         K1 = inp.shape[0]
         pi_pls = inp.pi @ an.stack_alpha
         P_aug = [np.hstack([P, np.asarray(t(pi_pls[:, None]), dtype=float)]) for P, t in zip(inp.P, inp.transforms)]
@@ -70,16 +67,7 @@ def main():
     p = argparse.ArgumentParser()
     p.add_argument("--seed", type=int, default=2007)
     args = p.parse_args()
-    screen.configure(args.seed)
-    rows = []
-    for cell in screen.CELLS:
-        dd = screen.CACHE / cell
-        if not dd.exists():
-            continue
-        for q in sorted(dd.glob("*.pkl"), key=lambda q: int(q.stem)):
-            rows.append(row(cell, int(q.stem)))
-        print(cell, flush=True)
-        pd.DataFrame(rows).to_csv(screen.RESULTS / f"contrast_boot_seed{args.seed}.csv", index=False)
+    run_cached(args.seed, row, f"contrast_boot_seed{args.seed}.csv")
 
 
 if __name__ == "__main__":
