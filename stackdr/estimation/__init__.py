@@ -22,7 +22,12 @@ from stackdr.estimation._diagnostics import (
     weight_side_values,
 )
 from stackdr.estimation._estimator import BlendEstimator
-from stackdr.estimation._fold_check import ALERT_P, FoldCheck, check_folds
+from stackdr.estimation._fold_check import (
+    ALERT_P,
+    FoldCheck,
+    check_folds,
+    fold_model_jackknife,
+)
 from stackdr.estimation._learners import (
     CATALOGUE,
     check_library,
@@ -118,6 +123,7 @@ __all__ = [
     "blended_propensity",
     "check_cluster",
     "check_folds",
+    "fold_model_jackknife",
     "check_library",
     "check_value",
     "close_match",

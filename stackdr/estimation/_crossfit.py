@@ -51,6 +51,15 @@ class CrossFitResult:
     weighted_fits : dict
         With sampling weights: ``"side:learner"`` -> whether the learner was fitted with them
         (False: it takes no ``sample_weight`` and was fitted unweighted). Empty without weights.
+    jackknife_rows : ndarray (m,) or None
+        Rows every fold's models also predicted (all rows up to :data:`JACKKNIFE_ROWS`, else a
+        seeded sample of that many), for the fold-model jackknife; None when not requested, in
+        sample, or with one fold.
+    fold_propensity : ndarray (R, K, m, K1) or None
+        Propensity predictions on ``jackknife_rows`` of the models fitted without fold k, clipped
+        as the out-of-fold ones are.
+    fold_outcome : dict head -> ndarray (R, K, m, K2), or None
+        The same for the outcome heads.
     """
 
     fold_labels: np.ndarray
@@ -69,6 +78,9 @@ class CrossFitResult:
     failures: dict = field(default_factory=dict)
     fit_seconds: dict = field(default_factory=dict)
     weighted_fits: dict = field(default_factory=dict)
+    jackknife_rows: np.ndarray | None = None
+    fold_propensity: np.ndarray | None = None
+    fold_outcome: dict | None = None
 
     @property
     def repeats(self) -> int:
@@ -145,6 +157,28 @@ def make_folds(
         for s, (_, test) in enumerate(splitter.split(np.zeros(n), A if stratify else None)):
             out[r, test] = s
     return out
+
+
+#: Most rows the fold-model jackknife evaluates every fold's models on (a seeded sample above it):
+#: enough to measure how much the fitted models move the estimate, at a bounded prediction cost.
+JACKKNIFE_ROWS = 2000
+
+
+def jackknife_rows(n: int, seed: int, cap: int = JACKKNIFE_ROWS) -> np.ndarray:
+    """The rows the fold-model jackknife evaluates: all ``n`` rows up to ``cap``, else a sorted
+    sample of ``cap`` rows drawn with ``seed``.
+
+    Examples
+    --------
+    >>> jackknife_rows(5, 0).tolist()
+    [0, 1, 2, 3, 4]
+    >>> jackknife_rows(10_000, 0, cap=3).shape
+    (3,)
+    """
+    if n <= cap:
+        return np.arange(n)
+    rng = np.random.default_rng([int(seed), 4021])
+    return np.sort(rng.choice(n, size=cap, replace=False))
 
 
 def _predict(est, X, kind):
@@ -245,6 +279,7 @@ def cross_fit(
     n_jobs: int | None = 1,
     threads: int | None = None,
     progress: bool = False,
+    jackknife: bool = False,
 ) -> CrossFitResult:
     """Fit every learner on every training split and collect out-of-fold predictions.
 
@@ -272,6 +307,10 @@ def cross_fit(
     threads : int, optional
         Native threads per learner fit (default one; see
         :func:`~stackdr.estimation.threads_per_fit`).
+    jackknife : bool
+        Also predict :func:`jackknife_rows` with every fold's models (``fold_propensity``,
+        ``fold_outcome``), for the fold-model jackknife of the refitting noise. The out-of-fold
+        predictions are made by the same calls as without it, so they do not change.
 
     Notes
     -----
@@ -316,6 +355,7 @@ def cross_fit(
                         )
 
     per_fit = threads_per_fit(n_jobs, threads)
+    extra = jackknife_rows(n, seed) if (jackknife and not in_sample and n_folds > 1) else None
     tasks, keys, costs = [], [], []
     for r in range(labels.shape[0]):
         for s in range(n_folds):
@@ -323,16 +363,17 @@ def cross_fit(
             train = np.arange(n) if in_sample else np.flatnonzero(labels[r] != s)
             for name, est in propensity_library.items():
                 sw = weights[train] if weighted.get(f"propensity:{name}") else None
+                tests = [X[test]] if extra is None else [X[test], X[extra]]
                 tasks.append(
                     delayed(_fit_and_predict)(
-                        est, (X[train], A[train], sw), [X[test]], prop_kind, per_fit
+                        est, (X[train], A[train], sw), tests, prop_kind, per_fit
                     )
                 )
-                keys.append(("propensity", name, r, test, None))
+                keys.append(("propensity", name, r, s, test, None))
                 costs.append(expected_cost(est, train.size))
             for name, est in outcome_library.items():
                 for fit_rows, inputs, unit_heads in _outcome_units(
-                    X, A, train, test, needed, heads, outcome_mode
+                    X, A, train, test, needed, heads, outcome_mode, extra
                 ):
                     sw = weights[fit_rows] if weighted.get(f"outcome:{name}") else None
                     tasks.append(
@@ -340,7 +381,7 @@ def cross_fit(
                             est, (inputs[0], Y[fit_rows], sw), inputs[1], "regressor", per_fit
                         )
                     )
-                    keys.append(("outcome", name, r, test, unit_heads))
+                    keys.append(("outcome", name, r, s, test, unit_heads))
                     costs.append(expected_cost(est, fit_rows.size))
     # Longest expected first (stable, so equal costs keep their natural order).
     order = sorted(range(len(tasks)), key=lambda i: -costs[i])
@@ -356,11 +397,15 @@ def cross_fit(
     R = labels.shape[0]
     prop = {name: np.full((R, n), np.nan) for name in propensity_library}
     outc = {name: {h: np.full((R, n), np.nan) for h in heads} for name in outcome_library}
+    if extra is not None:
+        shape = (R, n_folds, extra.size)
+        fold_prop = {name: np.full(shape, np.nan) for name in propensity_library}
+        fold_outc = {name: {h: np.full(shape, np.nan) for h in heads} for name in outcome_library}
     # A learner's reported failure is its first in fold order, whatever the dispatch order.
     first_failure: dict[str, tuple[int, str]] = {}
     seconds: dict[str, float] = {}
     # results first: the progress bar only closes when its generator is exhausted.
-    for (preds, secs, err), (index, side, name, r, test, unit_heads) in zip(results, keys):
+    for (preds, secs, err), (index, side, name, r, s, test, unit_heads) in zip(results, keys):
         key = f"{side}:{name}"
         seconds[key] = seconds.get(key, 0.0) + secs
         if err is not None:
@@ -369,9 +414,14 @@ def cross_fit(
             continue
         if side == "propensity":
             prop[name][r, test] = preds[0]
+            if extra is not None:
+                fold_prop[name][r, s] = preds[1]
         else:
             for head, p in zip(unit_heads, preds):
                 outc[name][head][r, test] = p
+            if extra is not None:
+                for head, p in zip(unit_heads, preds[len(unit_heads) :]):
+                    fold_outc[name][head][r, s] = p
 
     failures = {key: msg for key, (_, msg) in sorted(first_failure.items(), key=lambda kv: kv[1])}
     for key, msg in failures.items():
@@ -397,6 +447,12 @@ def cross_fit(
         clipped = raw.copy()
     outcome = {h: np.stack([outc[k][h] for k in out_names], axis=-1) for h in heads}
     observed, observed_mask = _observed_predictions(outcome, A, needed)
+    fold_propensity = fold_outcome = None
+    if extra is not None:
+        fold_propensity = np.stack([fold_prop[k] for k in prop_names], axis=-1)
+        if prop_kind == "classifier":
+            fold_propensity = np.clip(fold_propensity, clip, 1 - clip)
+        fold_outcome = {h: np.stack([fold_outc[k][h] for k in out_names], axis=-1) for h in heads}
     return CrossFitResult(
         fold_labels=labels,
         propensity=clipped,
@@ -414,6 +470,9 @@ def cross_fit(
         failures=failures,
         fit_seconds=seconds,
         weighted_fits={k: v for k, v in weighted.items() if k not in failures},
+        jackknife_rows=extra,
+        fold_propensity=fold_propensity,
+        fold_outcome=fold_outcome,
     )
 
 
@@ -433,23 +492,29 @@ def _warn_clipping(clip_counts: np.ndarray, names: list, n: int, clip: float) ->
     )
 
 
-def _outcome_units(X, A, train, test, needed, heads, mode):
+def _outcome_units(X, A, train, test, needed, heads, mode, extra=None):
     """The fits an outcome learner needs on one split: (fit rows, (X_fit, [X_test...]), heads
-    predicted)."""
+    predicted). With ``extra`` rows, the test inputs of the heads on ``test`` are followed by
+    the same heads on ``extra``."""
     train_needed = train[needed[train]]
     arm_heads = [h for h in heads if h in ("mu1", "mu0")]
+    sets = [test] if extra is None else [test, extra]
     if "m" in heads:
-        yield train_needed, (X[train_needed], [X[test]]), ["m"]
+        yield train_needed, (X[train_needed], [X[rows] for rows in sets]), ["m"]
     if not arm_heads:
         return
     if mode == "pooled":
         XA = np.column_stack([X[train_needed], A[train_needed]])
-        tests = [np.column_stack([X[test], np.full(test.size, float(h[-1]))]) for h in arm_heads]
+        tests = [
+            np.column_stack([X[rows], np.full(rows.size, float(h[-1]))])
+            for rows in sets
+            for h in arm_heads
+        ]
         yield train_needed, (XA, tests), arm_heads
         return
     for h in arm_heads:
         rows = train_needed[A[train_needed] == float(h[-1])]
-        yield rows, (X[rows], [X[test]]), [h]
+        yield rows, (X[rows], [X[t] for t in sets]), [h]
 
 
 def _observed_predictions(outcome: dict, A: np.ndarray, needed: np.ndarray):

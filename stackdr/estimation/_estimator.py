@@ -172,7 +172,14 @@ class BlendEstimator(BaseEstimator):
     interval : {"percentile", "basic"}
         Bootstrap interval type.
     calibration_refits : int
-        Refit replicates that widen the reweighting bootstrap by their paired spread ratio.
+        Refit replicates that widen the reweighting bootstrap by their paired spread ratio
+        (default 5; 0: never), run when the fold-model jackknife flags the fit (see
+        ``calibration_gate``).
+    calibration_gate : float
+        The refit calibration runs when the fold-model jackknife's estimate of the learners'
+        refitting noise exceeds this share of the headline's bootstrap variance (default 0.05;
+        0: always). The jackknife re-evaluates the estimate with each fold's models on the same
+        rows, so only the fitted models change.
     chunk_size : int, optional
         Replicates per batched matrix product (default: sized to bound memory); results do not
         depend on it.
@@ -218,7 +225,8 @@ class BlendEstimator(BaseEstimator):
         bootstrap: int = 1000,
         bootstrap_kind: str = "multinomial",
         interval: str = "percentile",
-        calibration_refits: int = 0,
+        calibration_refits: int = 5,
+        calibration_gate: float = 0.05,
         chunk_size: int | None = None,
         seed: int = 0,
         n_jobs: int | None = 1,
@@ -248,6 +256,7 @@ class BlendEstimator(BaseEstimator):
         self.bootstrap_kind = bootstrap_kind
         self.interval = interval
         self.calibration_refits = calibration_refits
+        self.calibration_gate = calibration_gate
         self.chunk_size = chunk_size
         self.seed = seed
         self.n_jobs = n_jobs
@@ -307,6 +316,7 @@ class BlendEstimator(BaseEstimator):
                 target,
                 n_jobs=dask_jobs(self.n_jobs) if self.backend == "dask" else self.n_jobs,
                 progress=self.progress,
+                jackknife=True,
             )
         fit_seconds = time.perf_counter() - start
         result = self.analyse(prepared, target, cf)
@@ -315,9 +325,16 @@ class BlendEstimator(BaseEstimator):
         return result
 
     def cross_fit(
-        self, prepared: PreparedData, target: Target, *, n_jobs=1, progress: bool = False
+        self,
+        prepared: PreparedData,
+        target: Target,
+        *,
+        n_jobs=1,
+        progress: bool = False,
+        jackknife: bool = False,
     ) -> CrossFitResult:
-        """Cross-fit both libraries on validated data with this estimator's settings."""
+        """Cross-fit both libraries on validated data with this estimator's settings
+        (``jackknife``: also the fold models' predictions for the fold-model jackknife)."""
         plib, olib = self._libraries(prepared)
         return cross_fit(
             prepared,
@@ -333,6 +350,7 @@ class BlendEstimator(BaseEstimator):
             n_jobs=n_jobs,
             threads=self.threads,
             progress=progress,
+            jackknife=jackknife,
         )
 
     def _libraries(self, prepared: PreparedData) -> tuple[dict, dict]:
@@ -498,7 +516,9 @@ class BlendEstimator(BaseEstimator):
             result.attach_bootstrap(boot)
             timings["bootstrap"] = time.perf_counter() - t1
         if bootstrap:  # not inside a refit replicate
+            t2 = time.perf_counter()
             result.fold_check = check_folds(result, self, target)
+            timings["fold_check"] = time.perf_counter() - t2
         return result
 
     def inference_settings(self) -> InferenceSettings:

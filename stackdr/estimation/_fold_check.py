@@ -1,5 +1,5 @@
-"""The between-fold check of a fit, and the optional refit calibration of the reweighting
-bootstrap.
+"""The between-fold check of a fit, the fold-model jackknife of the learners' refitting noise,
+and the refit calibration of the reweighting bootstrap that the jackknife switches on.
 
 The check is always computed (it changes no number): the fold-specific estimates at the
 target-aimed nuisances, Cochran's Q over the cross-fitting folds and the share of the
@@ -9,26 +9,42 @@ learners moves the estimate by more than sampling noise; the reweighting bootstr
 the out-of-fold predictions fixed, cannot see that, so the fit warns
 (:class:`~stackdr.errors.UnstableLearnersWarning`) and recommends the refit bootstrap.
 
-With the setting ``calibration_refits`` (M > 0) and a reweighting bootstrap, M refit replicates
-are run on the row draws of the first M reweighting replicates; each estimator's bootstrap SE and
-interval are widened by the paired ratio of the two bootstraps' spreads
-(:func:`~stackdr.inference.paired_refit_ratio`) where it exceeds 1. Replicate b of both
-bootstraps comes from the same generator, so the row draws are shared with multinomial row
-weights (the default); with Bayesian weights the ratio compares unpaired replicates (noisier).
-Cost: M full fits (cross-fitting included), against a reweighting bootstrap that fits nothing.
-The evidence for the rule and its default (off) is in DEVELOPERS.md ("Honest SE with unstable
-learners").
+The fold-model jackknife (:func:`fold_model_jackknife`) measures the same thing with far more
+power: every fold's models (fitted without that fold) also predict one common set of rows, and
+each estimator is re-evaluated on those rows with fold k's models for every k. Only the fitted
+models differ between the K values, so their spread is the learners' refitting noise with the
+row sampling removed; the grouped (delete-a-fold) jackknife turns it into a variance,
+(K - 1) / K x sum_k (g_k - mean g)^2. Where the DR estimate is insensitive to small changes in
+the nuisances (Neyman orthogonality with good learners) this is negligible; where every learner
+is wrong and unstable it is not, and the reweighting bootstrap is then too narrow.
+
+With ``calibration_refits`` (M > 0) and a reweighting bootstrap, when the jackknife variance of
+the headline estimate exceeds ``calibration_gate`` times its bootstrap variance (or always with a
+gate of 0), M refit replicates are run on the row draws of the first M reweighting replicates;
+each estimator's bootstrap SE and interval are widened by the paired ratio of the two
+bootstraps' spreads (:func:`~stackdr.inference.paired_refit_ratio`) where it exceeds 1. Replicate
+b of both bootstraps comes from the same generator, so the row draws are shared with multinomial
+row weights (the default); with Bayesian weights the ratio compares unpaired replicates
+(noisier). Cost: M full fits (cross-fitting included), only for flagged fits; the jackknife
+itself costs predictions only. The evidence for the rule and its defaults is in DEVELOPERS.md
+("Honest SE with unstable learners").
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
 from functools import partial
+from types import SimpleNamespace
 
 import numpy as np
 from sklearn.base import clone
 
-from stackdr.core import estimate_from_rows, row_contributions
+from stackdr.core import (
+    estimate_from_rows,
+    pair_inputs,
+    row_contributions,
+    with_stacked_propensity,
+)
 from stackdr.errors import InputError, UnstableLearnersWarning, warn_user
 from stackdr.estimation._numbers import number_text
 from stackdr.estimation._parallel import dask_jobs, parallel_backend
@@ -73,6 +89,17 @@ class FoldCheck:
         spread (:func:`~stackdr.inference.paired_refit_ratio`); empty otherwise.
     headline : str
         Name of the target-aimed row the check is computed for.
+    fit_variance : dict of str to float
+        Per estimator: the fold-model jackknife variance of its estimate (the learners'
+        refitting noise; :func:`fold_model_jackknife`); empty when not available (one fold,
+        fits in sample).
+    fit_share : float
+        The headline's jackknife variance over its bootstrap variance (over its squared
+        influence-function SE without a bootstrap); NaN when not available.
+    gate : float
+        The ``calibration_gate`` the share was compared with (NaN without an estimator).
+    skipped : str
+        Why a flagged fit was not calibrated (empty otherwise).
     """
 
     spread: FoldSpread
@@ -83,6 +110,15 @@ class FoldCheck:
     uncorrected_se: dict = field(default_factory=dict)
     refit_ratios: dict = field(default_factory=dict)
     headline: str = ""
+    fit_variance: dict = field(default_factory=dict)
+    fit_share: float = float("nan")
+    gate: float = float("nan")
+    skipped: str = ""
+
+    @property
+    def flagged(self) -> bool:
+        """The jackknife share is above the gate (the refit calibration is called for)."""
+        return bool(np.isfinite(self.fit_share) and self.fit_share > self.gate)
 
     def sentence(self) -> str:
         """The check in one or two sentences, for the summary, the report and the warning."""
@@ -106,7 +142,24 @@ class FoldCheck:
                     "estimate, which the reweighting bootstrap (fits held fixed) misses"
                 )
                 text += "." if self.corrected else "; consider --bootstrap-kind refit."
-        return text + self._correction()
+        return text + self._jackknife() + self._correction()
+
+    def _jackknife(self) -> str:
+        if not np.isfinite(self.fit_share):
+            return ""
+        share = number_text(self.fit_share, 2)
+        text = (
+            f" Fold-model jackknife: the learners' refitting noise is {share} of the bootstrap "
+            "variance of the target-aimed estimate"
+        )
+        if not np.isfinite(self.gate):
+            return text + "."
+        if not self.flagged:
+            return text + f" (below the gate {self.gate:g}; no refit calibration)."
+        text += f" (above the gate {self.gate:g})"
+        if self.corrected:
+            return text + ", so the refit calibration ran."
+        return text + f"; {self.skipped}."
 
     def _correction(self) -> str:
         if not self.corrected:
@@ -186,12 +239,69 @@ def _refit_calibration(estimator, target, result) -> tuple[dict, dict]:
     return ratios, added
 
 
+def fold_model_jackknife(result) -> dict:
+    """The fold-model jackknife variance of every estimator of ``result``: the learners'
+    refitting noise, with the row sampling held fixed.
+
+    For each fold assignment and each fold k, the estimator's weights are applied to the
+    predictions that the models fitted without fold k made on the common rows
+    ``crossfit.jackknife_rows`` (sampling weights as in the fit), giving g_k; the variance is
+    (K - 1) / K x sum_k (g_k - mean g)^2, the grouped jackknife for K groups of n / K rows, and
+    is averaged over fold assignments.
+
+    Returns
+    -------
+    dict of str to float
+        Estimator name -> variance; empty when the cross-fit kept no fold predictions.
+    """
+    cf = result.crossfit
+    if cf.fold_propensity is None:
+        return {}
+    rows = cf.jackknife_rows
+    prepared, an = result.data, result.analysis
+    A, Y = prepared.A[rows], prepared.Y[rows]
+    w = None if prepared.weights is None else prepared.weights[rows]
+    R, K = cf.fold_propensity.shape[:2]
+    values = {row.name: np.zeros((R, K)) for row in result.estimators}
+    for r in range(R):
+        for k in range(K):
+            fold = SimpleNamespace(
+                propensity=cf.fold_propensity[r, k][None],
+                outcome={h: v[r, k][None] for h, v in cf.fold_outcome.items()},
+                propensity_kind=cf.propensity_kind,
+            )
+            inp = pair_inputs(result.target, fold, A, Y, 0, sample_weight=w)
+            if an.stacked:
+                inp = with_stacked_propensity(inp, an.stack_alpha)
+            for row in result.estimators:
+                H = row_contributions(inp, row.alpha, row.beta, row.blend)
+                values[row.name][r, k] = estimate_from_rows(H, inp.d, w).estimate
+    factor = (K - 1) / K
+    return {
+        name: float(np.mean(factor * ((g - g.mean(axis=1, keepdims=True)) ** 2).sum(axis=1)))
+        for name, g in values.items()
+    }
+
+
+def _jackknife_share(result, fit_variance: dict) -> float:
+    main = result.estimators[0]
+    if main.name not in fit_variance:
+        return float("nan")
+    boot = result.bootstrap
+    se = main.se
+    if boot is not None and main.name in boot.standard_errors:
+        se = boot.standard_errors[main.name]
+    if not (np.isfinite(se) and se > 0):
+        return float("nan")
+    return float(fit_variance[main.name] / se**2)
+
+
 def check_folds(result, estimator=None, target=None) -> FoldCheck:
     """The between-fold check of a fitted result and, when ``estimator`` has
-    ``calibration_refits`` > 0 and the result a reweighting bootstrap, its refit calibration
-    (the result's rows and bootstrap record are updated): that many refit replicates, and every
-    estimator's SE and interval widened by their paired ratio to the reweighting replicates
-    where it exceeds 1.
+    ``calibration_refits`` > 0, the result a reweighting bootstrap and the fold-model jackknife
+    share above ``calibration_gate`` (or a gate of 0), its refit calibration (the result's rows
+    and bootstrap record are updated): that many refit replicates, and every estimator's SE and
+    interval widened by their paired ratio to the reweighting replicates where it exceeds 1.
 
     Warns (:class:`~stackdr.errors.UnstableLearnersWarning`) when the target-aimed estimate's
     folds disagree and the intervals do not already account for refitting.
@@ -212,7 +322,27 @@ def check_folds(result, estimator=None, target=None) -> FoldCheck:
     spread, influence = _spread(result, main)
     boot = result.bootstrap
     reweighting = boot is not None and boot.kind != "refit"
-    corrected = reweighting and int(getattr(estimator, "calibration_refits", 0) or 0) > 0
+    fit_variance = fold_model_jackknife(result)
+    share = _jackknife_share(result, fit_variance)
+    refits = int(getattr(estimator, "calibration_refits", 0) or 0)
+    gate = float(getattr(estimator, "calibration_gate", float("nan")))
+    flagged = bool(np.isfinite(share) and np.isfinite(gate) and share > gate)
+    wanted = reweighting and refits > 0 and (gate == 0 or flagged)
+    skipped = ""
+    if wanted and not np.isscalar(estimator.folds):
+        wanted = False
+        skipped = "the refit calibration needs generated folds, not fixed fold labels"
+    elif flagged and not wanted:
+        if boot is None:
+            skipped = "without a bootstrap the Wald SE leaves that noise out"
+        elif boot.kind == "refit":
+            skipped = "the refit bootstrap already includes it"
+        else:
+            skipped = (
+                "the refit calibration is off (calibration_refits = 0), so the bootstrap "
+                "interval may be too narrow"
+            )
+    corrected = wanted
     added, before, ratios = {}, {}, {}
     if corrected:
         ratios, added = _refit_calibration(estimator, target, result)
@@ -228,6 +358,10 @@ def check_folds(result, estimator=None, target=None) -> FoldCheck:
         before,
         ratios,
         main.name,
+        fit_variance,
+        share,
+        gate,
+        skipped,
     )
     if check.alert and not corrected and not (boot is not None and boot.kind == "refit"):
         warn_user(check.sentence(), UnstableLearnersWarning)

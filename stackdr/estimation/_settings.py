@@ -295,12 +295,22 @@ _TABLE = (
     Setting("interval", "percentile", "text", "bootstrap interval type", INTERVALS),
     Setting(
         "calibration_refits",
-        0,
+        5,
         "whole",
-        "refit replicates that calibrate the reweighting bootstrap (0: none): SEs and intervals "
-        "widen by their spread's ratio to the reweighting replicates on the same row draws",
+        "refit replicates that calibrate the reweighting bootstrap when the fold-model "
+        "jackknife flags the fit (0: never): SEs and intervals widen by their spread's ratio to "
+        "the reweighting replicates on the same row draws",
         low=0,
         metavar="M",
+    ),
+    Setting(
+        "calibration_gate",
+        0.05,
+        "number",
+        "run the refit calibration when the fold-model jackknife puts the learners' refitting "
+        "noise above this share of the bootstrap variance (0: always)",
+        low=0,
+        metavar="G",
     ),
     Setting(
         "chunk_size",

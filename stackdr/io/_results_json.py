@@ -204,6 +204,9 @@ def _fold_check(check) -> dict | None:
         "added_variance": {str(k): plain(v) for k, v in check.added_variance.items()},
         "uncorrected_se": {str(k): plain(v) for k, v in check.uncorrected_se.items()},
         "refit_ratios": {str(k): plain(v) for k, v in check.refit_ratios.items()},
+        "fit_variance": {str(k): plain(v) for k, v in check.fit_variance.items()},
+        "fit_share": plain(check.fit_share),
+        "calibration_gate": plain(check.gate),
         "sentence": check.sentence(),
     }
 

@@ -19,6 +19,7 @@ from stackdr.studies._store import (
     StudyCodeError,
     StudyExistsError,
     StudySettingsError,
+    code_fingerprint,
     read_study_record,
 )
 from stackdr.studies._summaries import (
@@ -29,6 +30,7 @@ from stackdr.studies._summaries import (
 )
 
 __all__ = [
+    "code_fingerprint",
     "DESCRIPTION",
     "ORACLE",
     "STUDY_SETTINGS",
