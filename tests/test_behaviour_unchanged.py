@@ -7,8 +7,9 @@ summation order of the bootstrap's matrix products (last-digit differences). The
 own thread budget (one native thread per fit unless ``threads`` is set) gives exactly that
 limit. The settings that later releases may change (blend, tie-break scale, the stacked
 propensity column, the contrast test and the gated refit calibration added later) are pinned
-here to their values at that commit, so this test keeps guarding the moved code paths. Comparison rows added since (the
-smoothed pair average) are left out of the comparison; adding a row must not change the others.
+here to their values at that commit, so this test keeps guarding the moved code paths.
+Comparison rows added since (the smoothed pair average) are left out of the comparison; adding a
+row must not change the others.
 """
 
 from __future__ import annotations

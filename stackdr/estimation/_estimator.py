@@ -180,6 +180,10 @@ class BlendEstimator(BaseEstimator):
         refitting noise exceeds this share of the headline's bootstrap variance (default 0.05;
         0: always). The jackknife re-evaluates the estimate with each fold's models on the same
         rows, so only the fitted models change.
+    calibration_rows : int
+        The gated refit calibration runs on data sets of at most this many rows (default
+        20,000: each refit is a full fit); a larger flagged fit gets a note recommending
+        ``calibration_rows`` or the refit bootstrap instead.
     chunk_size : int, optional
         Replicates per batched matrix product (default: sized to bound memory); results do not
         depend on it.
@@ -227,6 +231,7 @@ class BlendEstimator(BaseEstimator):
         interval: str = "percentile",
         calibration_refits: int = 5,
         calibration_gate: float = 0.05,
+        calibration_rows: int = 20000,
         chunk_size: int | None = None,
         seed: int = 0,
         n_jobs: int | None = 1,
@@ -257,6 +262,7 @@ class BlendEstimator(BaseEstimator):
         self.interval = interval
         self.calibration_refits = calibration_refits
         self.calibration_gate = calibration_gate
+        self.calibration_rows = calibration_rows
         self.chunk_size = chunk_size
         self.seed = seed
         self.n_jobs = n_jobs

@@ -18,15 +18,16 @@ row sampling removed; the grouped (delete-a-fold) jackknife turns it into a vari
 the nuisances (Neyman orthogonality with good learners) this is negligible; where every learner
 is wrong and unstable it is not, and the reweighting bootstrap is then too narrow.
 
-With ``calibration_refits`` (M > 0) and a reweighting bootstrap, when the jackknife variance of
-the headline estimate exceeds ``calibration_gate`` times its bootstrap variance (or always with a
-gate of 0), M refit replicates are run on the row draws of the first M reweighting replicates;
-each estimator's bootstrap SE and interval are widened by the paired ratio of the two
-bootstraps' spreads (:func:`~stackdr.inference.paired_refit_ratio`) where it exceeds 1. Replicate
-b of both bootstraps comes from the same generator, so the row draws are shared with multinomial
-row weights (the default); with Bayesian weights the ratio compares unpaired replicates
-(noisier). Cost: M full fits (cross-fitting included), only for flagged fits; the jackknife
-itself costs predictions only. The evidence for the rule and its defaults is in DEVELOPERS.md
+With ``calibration_refits`` (M > 0), a reweighting bootstrap and at most ``calibration_rows``
+rows, when the jackknife variance of the headline estimate exceeds ``calibration_gate`` times
+its bootstrap variance (or always with a gate of 0), M refit replicates are run on the row draws
+of the first M reweighting replicates; each estimator's bootstrap SE and interval are widened
+by the paired ratio of the two bootstraps' spreads (:func:`~stackdr.inference.paired_refit_ratio`)
+where it exceeds 1. Replicate b of both bootstraps comes from the same generator, so the row
+draws are shared with multinomial row weights (the default); with Bayesian weights the ratio
+compares unpaired replicates (noisier). Cost: M full fits (cross-fitting included), only for
+flagged fits; the jackknife itself costs predictions only. The evidence for the rule and its
+defaults is in DEVELOPERS.md
 ("Honest SE with unstable learners").
 """
 
@@ -332,6 +333,14 @@ def check_folds(result, estimator=None, target=None) -> FoldCheck:
     if wanted and not np.isscalar(estimator.folds):
         wanted = False
         skipped = "the refit calibration needs generated folds, not fixed fold labels"
+    elif wanted and result.data.n > int(getattr(estimator, "calibration_rows", result.data.n)):
+        wanted = False
+        skipped = (
+            f"with {result.data.n:,} rows (more than calibration_rows = "
+            f"{int(estimator.calibration_rows):,}) the refit calibration, {refits} full fits, "
+            "is not run by default; raise calibration_rows or use --bootstrap-kind refit if the "
+            "interval matters"
+        )
     elif flagged and not wanted:
         if boot is None:
             skipped = "without a bootstrap the Wald SE leaves that noise out"

@@ -313,6 +313,15 @@ _TABLE = (
         metavar="G",
     ),
     Setting(
+        "calibration_rows",
+        20000,
+        "whole",
+        "largest data set (rows) the gated refit calibration runs on by default; above it a "
+        "flagged fit gets a note instead (each refit costs a full fit)",
+        low=0,
+        metavar="N",
+    ),
+    Setting(
         "chunk_size",
         None,
         "whole",

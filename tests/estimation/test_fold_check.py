@@ -187,6 +187,7 @@ def test_the_gate_switches_the_refit_calibration_on_for_unstable_learners_only()
         unstable = _fit(unstable=True, bootstrap=20, calibration_refits=3)
         closed = _fit(unstable=True, bootstrap=20, calibration_refits=3, calibration_gate=1e6)
         stable = _fit(unstable=False, bootstrap=20, calibration_refits=3)
+        capped = _fit(unstable=True, bootstrap=20, calibration_refits=3, calibration_rows=799)
         fixed = BlendEstimator(
             "ate",
             {"swinging": SwingingClassifier()},
@@ -209,6 +210,9 @@ def test_the_gate_switches_the_refit_calibration_on_for_unstable_learners_only()
     )
     assert not stable.fold_check.flagged and not stable.fold_check.corrected
     assert "below the gate 0.05; no refit calibration" in _text(stable)
+    # Above calibration_rows (800 rows here) the flagged fit is not refitted and says why.
+    assert capped.fold_check.flagged and not capped.fold_check.corrected
+    assert "with 800 rows (more than calibration_rows = 799)" in _text(capped)
     # Fixed fold labels: refits cannot redraw the folds, so the flagged fit says so instead.
     assert fixed.fold_check.flagged and not fixed.fold_check.corrected
     assert "needs generated folds" in _text(fixed)
