@@ -324,7 +324,12 @@ def cross_fit(
     binary = bool(np.isin(A, (0.0, 1.0)).all())
     prop_kind = "classifier" if binary else "regressor"
     labels = make_folds(
-        A, folds, seed=seed, stratify=binary, repeats=repeats, groups=data.cluster_codes
+        A,
+        folds,
+        seed=seed,
+        stratify=binary,
+        repeats=repeats,
+        groups=data.cluster_codes if data.fold_groups is None else data.fold_groups,
     )
     weights = data.weights
     weighted = {}

@@ -45,6 +45,11 @@ class PreparedData:
         Cluster of each row as codes 0..G-1 (in order of the sorted labels), or None.
     weights_name, clusters_name : str or None
         The columns they came from.
+    fold_groups : ndarray (n,) of int or None
+        Rows that must share a cross-fitting fold: in a refit-bootstrap resample, the copies of
+        one original row (or of one original cluster), so that no copy is predicted by a model
+        that was fitted on another copy. None: rows are independent (clusters, when given, are
+        kept whole).
     """
 
     X: np.ndarray
@@ -58,6 +63,7 @@ class PreparedData:
     cluster_codes: np.ndarray | None = None
     weights_name: str | None = None
     clusters_name: str | None = None
+    fold_groups: np.ndarray | None = None
 
     @property
     def n(self) -> int:
@@ -71,7 +77,11 @@ class PreparedData:
     def take(self, rows: np.ndarray, cluster_codes: np.ndarray | None = None) -> PreparedData:
         """Rows ``rows`` (indices) of the data, e.g. for a resample; sampling weights follow
         their rows. ``cluster_codes`` gives the resample's clusters (a cluster drawn twice is
-        two clusters); by default the rows keep theirs."""
+        two clusters); by default the rows keep theirs. The copies of one original row (of one
+        original cluster, with clusters) share a ``fold_groups`` label, so cross-fitting keeps
+        them in one fold."""
+        original = self.cluster_codes[rows] if self.cluster_codes is not None else rows
+        fold_groups = np.unique(original, return_inverse=True)[1].astype(np.int64)
         if cluster_codes is None and self.cluster_codes is not None:
             cluster_codes = np.unique(self.cluster_codes[rows], return_inverse=True)[1]
         return PreparedData(
@@ -86,6 +96,7 @@ class PreparedData:
             cluster_codes,
             self.weights_name,
             self.clusters_name,
+            fold_groups,
         )
 
 

@@ -49,9 +49,11 @@ def refit_bootstrap(
     n_jobs: int | None = None,
 ) -> BootstrapResult:
     """Resample rows and redo cross-fitting, learner fits and the weight search in each
-    replicate (parallel through joblib). A row drawn twice may sit in training and test folds
-    at once, as is usual for this bootstrap. With clusters whole clusters are resampled, and
-    sampling weights travel with their rows.
+    replicate (parallel through joblib). The copies of a row drawn more than once share a fold
+    (``PreparedData.fold_groups``), so no copy is predicted by a model fitted on another copy:
+    with flexible learners that memorise their training rows such leakage would make the
+    replicates' out-of-fold predictions partly in-sample. With clusters whole clusters are
+    resampled (copies of a cluster share a fold), and sampling weights travel with their rows.
 
     Parameters
     ----------

@@ -218,3 +218,42 @@ def test_dispatch_order_is_longest_first_and_changes_no_number(monkeypatch):
     np.testing.assert_array_equal(
         sorted_run.crossfit.outcome["mu1"], natural_run.crossfit.outcome["mu1"]
     )
+
+
+def test_copies_of_a_resampled_row_share_a_cross_fitting_fold():
+    """In a refit-bootstrap resample a row drawn twice must not be predicted by a model fitted
+    on its own copy (common practice for cross-fitting on bootstrap samples: copies are kept in
+    one fold, as clusters are); with clusters, the copies of a cluster share a fold."""
+    import warnings as _warnings
+
+    from sklearn.linear_model import LinearRegression, LogisticRegression
+
+    from stackdr.core import get_target
+    from stackdr.estimation import cross_fit, prepare_data
+
+    rng = np.random.default_rng(11)
+    n = 300
+    frame = pd.DataFrame(
+        {"x": rng.normal(size=n), "a": rng.integers(0, 2, n), "y": rng.normal(size=n)}
+    )
+    frame["g"] = np.arange(n) // 3
+    target = get_target("ate")
+    for clusters in (None, "g"):
+        prepared = prepare_data(frame, "a", "y", ["x"], target=target, clusters=clusters)
+        rows = np.random.default_rng(3).integers(0, n, n)
+        resample = prepared.take(rows)
+        original = rows if clusters is None else frame["g"].to_numpy()[rows]
+        with _warnings.catch_warnings():
+            _warnings.simplefilter("ignore")
+            cf = cross_fit(
+                resample,
+                target,
+                {"logistic": LogisticRegression()},
+                {"linear": LinearRegression()},
+                folds=5,
+                seed=1,
+            )
+        labels = cf.fold_labels[0]
+        for value in np.unique(original):
+            assert np.unique(labels[original == value]).size == 1
+        assert np.unique(labels).size == 5
