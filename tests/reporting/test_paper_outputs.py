@@ -130,7 +130,14 @@ def test_headline_se_matches_its_interval(demo):
     main_row = results["estimators"][0]
     assert results["interval"]["se_method"] == "bootstrap" == main_row["se_method"]
     estimates = np.array(results["bootstrap"]["estimates"][main_row["name"]], dtype=float)
-    # The bootstrap SE: the sample standard deviation of the replicate estimates.
-    assert results["se"] == pytest.approx(np.std(estimates, ddof=1), rel=1e-9)
+    # The bootstrap SE: the sample standard deviation of the replicate estimates, widened by the
+    # refit calibration's added variance when the fold-model jackknife switched it on (the
+    # stored replicates are the reweighting ones; the check block says what was added).
+    check = results["diagnostics"]["fold_check"]
+    spread = np.std(estimates, ddof=1)
+    added = check["added_variance"].get(main_row["name"], 0.0) if check["corrected"] else 0.0
+    if added:
+        assert check["uncorrected_se"][main_row["name"]] == pytest.approx(spread, rel=1e-9)
+    assert results["se"] == pytest.approx(np.sqrt(spread**2 + added), rel=1e-9)
     assert results["wald_se"] == pytest.approx(main_row["wald_se"])
     assert json.dumps(results["notes"])  # plain sentences
