@@ -333,6 +333,10 @@ def _run_demo(args: argparse.Namespace) -> int:
         print(wrapped(f"  {side:<11}{text}", " " * 13))
     for note in result.notes:
         print(wrapped(note))
+    check = result.fold_check
+    if check is not None and (check.corrected or check.alert or check.skipped):
+        # The interval was widened (or should have been): say so where the numbers are shown.
+        print(wrapped(check.sentence()))
     print(f"Seconds: {result.timings.get('total', float('nan')):.1f}\n")
     print(wrapped(f"Caution: {CAUTION}"))
     print()

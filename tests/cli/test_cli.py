@@ -217,6 +217,10 @@ def test_demo_command(tmp_path, capsys):
     assert results["run"]["simulated"] is True and results["run"]["true_value"] == pytest.approx(
         -4.0
     )
+    # The console names a widened (or unwidened but flagged) interval, as the report does.
+    check = results["diagnostics"]["fold_check"]
+    shown = check["corrected"] or check["alert"] or "above the gate" in check["sentence"]
+    assert (check["sentence"] in " ".join(out.split())) == shown
 
 
 # ----------------------------------------------------------------------------- bad input
