@@ -64,14 +64,17 @@ def one_replicate(design: str, rep: int, seed: int, bootstrap: int) -> dict:
     main = result.estimators[0]
     check = result.fold_check
     ratio = check.refit_ratios.get(main.name, float("nan"))
-    widen = max(1.0, ratio) if check.corrected and np.isfinite(ratio) else 1.0
+    # The check records the SE before the calibration; the interval was widened about the
+    # estimate by the same SE ratio (``widen_intervals``), so that ratio undoes it.
+    se_rw = check.uncorrected_se.get(main.name, main.bootstrap_se)
+    widen = main.bootstrap_se / se_rw
     return {
         "design": design,
         "rep": rep,
         "truth": data.truth,
         "estimate": main.estimate,
         "se_if": main.se,
-        "se_rw": main.bootstrap_se / widen,
+        "se_rw": se_rw,
         "low_rw": main.estimate - (main.estimate - main.low) / widen,
         "high_rw": main.estimate + (main.high - main.estimate) / widen,
         "se": main.bootstrap_se,

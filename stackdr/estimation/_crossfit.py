@@ -361,6 +361,7 @@ def cross_fit(
 
     per_fit = threads_per_fit(n_jobs, threads)
     extra = jackknife_rows(n, seed) if (jackknife and not in_sample and n_folds > 1) else None
+    X_extra = None if extra is None else X[extra]
     tasks, keys, costs = [], [], []
     for r in range(labels.shape[0]):
         for s in range(n_folds):
@@ -368,7 +369,7 @@ def cross_fit(
             train = np.arange(n) if in_sample else np.flatnonzero(labels[r] != s)
             for name, est in propensity_library.items():
                 sw = weights[train] if weighted.get(f"propensity:{name}") else None
-                tests = [X[test]] if extra is None else [X[test], X[extra]]
+                tests = [X[test]] if extra is None else [X[test], X_extra]
                 tasks.append(
                     delayed(_fit_and_predict)(
                         est, (X[train], A[train], sw), tests, prop_kind, per_fit

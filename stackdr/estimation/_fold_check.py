@@ -27,8 +27,7 @@ where it exceeds 1. Replicate b of both bootstraps comes from the same generator
 draws are shared with multinomial row weights (the default); with Bayesian weights the ratio
 compares unpaired replicates (noisier). Cost: M full fits (cross-fitting included), only for
 flagged fits; the jackknife itself costs predictions only. The evidence for the rule and its
-defaults is in DEVELOPERS.md
-("Honest SE with unstable learners").
+defaults is in DEVELOPERS.md ("Honest SE with unstable learners").
 """
 
 from __future__ import annotations
@@ -119,7 +118,7 @@ class FoldCheck:
     @property
     def flagged(self) -> bool:
         """The jackknife share is above the gate (the refit calibration is called for)."""
-        return bool(np.isfinite(self.fit_share) and self.fit_share > self.gate)
+        return _above_gate(self.fit_share, self.gate)
 
     def sentence(self) -> str:
         """The check in one or two sentences, for the summary, the report and the warning."""
@@ -284,6 +283,11 @@ def fold_model_jackknife(result) -> dict:
     }
 
 
+def _above_gate(share: float, gate: float) -> bool:
+    """Whether a jackknife share is above the calibration gate (False when either is NaN)."""
+    return bool(np.isfinite(share) and np.isfinite(gate) and share > gate)
+
+
 def _jackknife_share(result, fit_variance: dict) -> float:
     main = result.estimators[0]
     if main.name not in fit_variance:
@@ -327,7 +331,7 @@ def check_folds(result, estimator=None, target=None) -> FoldCheck:
     share = _jackknife_share(result, fit_variance)
     refits = int(getattr(estimator, "calibration_refits", 0) or 0)
     gate = float(getattr(estimator, "calibration_gate", float("nan")))
-    flagged = bool(np.isfinite(share) and np.isfinite(gate) and share > gate)
+    flagged = _above_gate(share, gate)
     wanted = reweighting and refits > 0 and (gate == 0 or flagged)
     skipped = ""
     if wanted and not np.isscalar(estimator.folds):
