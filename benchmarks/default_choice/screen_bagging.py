@@ -9,14 +9,14 @@ from __future__ import annotations
 import os
 for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_v, "1")
-import argparse, dataclasses, sys, warnings
+import sys, warnings
 import numpy as np
-from screen_contrast import riesz_analysis, run_cached
-from stackdr.estimator import Analysis, noise_floor_function
-from stackdr.pairtable import blend_estimate, pair_rows, pair_standard_errors, pair_table
-from stackdr.selection import SearchSettings, run_search
+from screen_contrast import cached_main, riesz_analysis
+from screen_contrast_boot import column_setup
+from stackdr.pairtable import blend_estimate
+from stackdr.selection import run_search
 
-M = int(os.environ.get("BAG_M", "50"))
+M = int(os.environ.get("BAG_M", "100"))
 
 
 def row(cell, rep):
@@ -24,29 +24,11 @@ def row(cell, rep):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         an = res.analysis
-        inp = an.inputs[0]
-        n = inp.n
-        K1 = inp.shape[0]
-        pi_pls = inp.pi @ an.stack_alpha
-        P_aug = [np.hstack([P, np.asarray(t(pi_pls[:, None]), dtype=float)]) for P, t in zip(inp.P, inp.transforms)]
-        inp_aug = dataclasses.replace(inp, P=P_aug, pi=np.hstack([inp.pi, pi_pls[:, None]]))
-        Psi_aug = pair_table(inp_aug)
-        H = np.stack([pair_rows(inp_aug, k) for k in range(K1 + 1)], axis=1)
-        d = inp.d
-        anchor = np.eye(K1 + 1)[K1]
-        specs = {}
-        s05 = SearchSettings(blend="riesz", tie_break=True, tie_break_scale=0.5)
-        specs["r05"] = (slice(0, K1), s05, (an.stack_alpha, an.stack_beta), noise_floor_function(an, s05), an.masks)
-        st = SearchSettings(blend="riesz", tie_break=True, tie_break_scale=0.5)
-        an_aug = Analysis([inp_aug], Psi_aug, pair_standard_errors(inp_aug), an.losses, anchor, an.stack_beta, (None, None), st)
-        specs["v0.5"] = (slice(0, K1 + 1), st, (anchor, an.stack_beta), noise_floor_function(an_aug, st), (None, None))
+        n = an.inputs[0].n
+        K1 = an.inputs[0].shape[0]
+        inp_aug, Psi_aug, specs, pls, Psi_b = column_setup(an, (0.5,), np.random.default_rng([rep, 91]), M)
         out = {"cell": cell, "rep": rep, "truth": float(data.truth)}
-        pls = blend_estimate(inp_aug, anchor, an.stack_beta, "riesz")
         out["est_pls"] = pls.estimate
-        rng = np.random.default_rng([rep, 91])
-        W = rng.multinomial(n, np.full(n, 1.0 / n), size=M).astype(float)
-        num = np.einsum("bi,ikj->bkj", W, H)
-        Psi_b = num / (W @ d)[:, None, None]
         for name, (sel, st, anchors, tol, masks) in specs.items():
             search = run_search(Psi_aug[sel], st, anchors=anchors, tolerance=tol, masks=masks)
             a_full = np.zeros(K1 + 1); a_full[sel] = search.alpha
@@ -66,10 +48,7 @@ def row(cell, rep):
 
 
 def main():
-    p = argparse.ArgumentParser()
-    p.add_argument("--seed", type=int, default=2007)
-    args = p.parse_args()
-    run_cached(args.seed, row, f"bagging_seed{args.seed}.csv")
+    cached_main(row, "bagging")
 
 
 if __name__ == "__main__":

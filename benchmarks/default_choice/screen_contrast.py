@@ -78,11 +78,17 @@ def row(cell, rep):
     return out
 
 
-def main():
+def cached_main(row_fn, stem: str) -> None:
+    """Command line of a screen over the cached cross-fits: ``--seed`` picks the study seed, rows
+    go to ``<results>/<stem>_seed<seed>.csv``."""
     p = argparse.ArgumentParser()
     p.add_argument("--seed", type=int, default=2007)
     args = p.parse_args()
-    run_cached(args.seed, row, f"contrast_seed{args.seed}.csv")
+    run_cached(args.seed, row_fn, f"{stem}_seed{args.seed}.csv")
+
+
+def main():
+    cached_main(row, "contrast")
 
 
 if __name__ == "__main__":
