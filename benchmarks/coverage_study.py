@@ -7,10 +7,16 @@ coverage and mean width of the 95% percentile bootstrap interval and of the Wald
 (influence-function SE), with Monte Carlo SEs. Goal: coverage 0.93-0.97 for target-aimed and
 prediction-loss stacking.
 
-Runs in stages of replicates (resumable study file ``results/coverage.sqlite``); the tables are
-rewritten after every stage.
+``--wider`` runs the other built-in designs whose default libraries hold a consistent learner
+instead (``smooth-consistent``: smooth nuisances every flexible learner can fit, ATE 2; ``sparse``:
+a few active covariates, ATE 1; ``nsw-semi-synthetic``: NSW covariates with a simulated effect,
+ATE 1.5), same n, B and seed, in their own study file and tables (``coverage_wider.*``).
 
-Usage: .venv/bin/python benchmarks/coverage_study.py [--stages 25 50 100 200] [--jobs 2] [--report]
+Runs in stages of replicates (resumable study file ``results/coverage.sqlite``, or
+``coverage_wider.sqlite``); the tables are rewritten after every stage.
+
+Usage: .venv/bin/python benchmarks/coverage_study.py [--wider] [--stages 25 50 100 200] [--jobs 2]
+       [--report]
 """
 
 from __future__ import annotations
@@ -38,8 +44,15 @@ from stackdr.studies import (  # noqa: E402
 )
 
 RESULTS = Path(__file__).resolve().parent / "results"
-PATH = RESULTS / "coverage.sqlite"
-DESIGNS = ["lunceford-davidian", "kang-schafer"]
+# design set -> (study file stem, output stem, designs)
+SETS = {
+    "main": ("coverage", "coverage_study", ["lunceford-davidian", "kang-schafer"]),
+    "wider": (
+        "coverage_wider",
+        "coverage_wider",
+        ["smooth-consistent", "sparse", "nsw-semi-synthetic"],
+    ),
+}
 N = 1000
 BOOTSTRAP = 200
 FOCUS = ("target-aimed stacking", "prediction-loss stacking")
@@ -61,11 +74,13 @@ def coverage(frame: pd.DataFrame, low: str, high: str) -> dict:
     }
 
 
-def report() -> None:
-    if not PATH.exists():
+def report(which: str = "main") -> None:
+    stem, out, designs = SETS[which]
+    path = RESULTS / f"{stem}.sqlite"
+    if not path.exists():
         print("no results yet")
         return
-    results = read_results(PATH)
+    results = read_results(path)
     codes = sorted(set(results["code"].fillna("not recorded")))
     rows = []
     for (design, estimator), group in results.groupby(["design", "estimator"], sort=False):
@@ -92,9 +107,9 @@ def report() -> None:
     table = table.sort_values(
         ["design", "estimator"], key=lambda c: c.map(rank) if c.name == "estimator" else c
     ).reset_index(drop=True)
-    table.to_csv(RESULTS / "coverage_study.csv", index=False)
-    payload = {"n": N, "bootstrap": BOOTSTRAP, "designs": DESIGNS, "rows": rows}
-    (RESULTS / "coverage_study.json").write_text(json.dumps(payload, indent=2))
+    table.to_csv(RESULTS / f"{out}.csv", index=False)
+    payload = {"n": N, "bootstrap": BOOTSTRAP, "designs": designs, "rows": rows}
+    (RESULTS / f"{out}.json").write_text(json.dumps(payload, indent=2))
     shown = pd.DataFrame(
         {
             "design": table["design"],
@@ -123,7 +138,7 @@ def report() -> None:
     )
     focus = shown[shown["estimator"].isin(FOCUS)]
     text = [
-        "# Interval coverage, default libraries, n = 1000",
+        f"# Interval coverage, default libraries, n = {N}: {', '.join(designs)}",
         "",
         f"Written {time.strftime('%Y-%m-%d %H:%M')} by benchmarks/coverage_study.py. "
         f"95% intervals: reweighting bootstrap (B = {BOOTSTRAP}, percentile) and Wald "
@@ -146,9 +161,9 @@ def report() -> None:
         markdown_table(shown),
         "",
     ]
-    (RESULTS / "coverage_study.md").write_text("\n".join(text))
+    (RESULTS / f"{out}.md").write_text("\n".join(text))
     print(text_table(focus))
-    print(f"wrote {RESULTS / 'coverage_study.md'}, .csv and .json")
+    print(f"wrote {RESULTS / out}.md, .csv and .json")
 
 
 def main() -> None:
@@ -156,14 +171,19 @@ def main() -> None:
     parser.add_argument("--stages", type=int, nargs="+", default=[25, 50, 100, 200])
     parser.add_argument("--report", action="store_true", help="only rewrite the tables")
     parser.add_argument("--jobs", type=int, default=1, help="replicates in parallel")
+    parser.add_argument(
+        "--wider", action="store_true", help="the other designs with a consistent learner"
+    )
     args = parser.parse_args()
+    which = "wider" if args.wider else "main"
+    stem, _, designs = SETS[which]
     RESULTS.mkdir(parents=True, exist_ok=True)
     if not args.report:
         replicate = make_replicate("default", bootstrap=BOOTSTRAP)
         for reps in args.stages:
             run = run_study(
-                PATH,
-                DESIGNS,
+                RESULTS / f"{stem}.sqlite",
+                designs,
                 [N],
                 reps,
                 replicate,
@@ -178,8 +198,8 @@ def main() -> None:
                 f"{run.skipped} stored, {run.seconds:.0f} s",
                 flush=True,
             )
-            report()
-    report()
+            report(which)
+    report(which)
 
 
 if __name__ == "__main__":

@@ -33,6 +33,7 @@ PINNED = {
     "stacked_propensity": False,
     "contrast_z": 0,
     "calibration_refits": 0,
+    "outcome_side": "search",
 }
 ADDED_ROWS = {"smoothed pair average"}
 NSW_COVARIATES = ["age", "educ", "black", "hisp", "marr", "nodegree", "re74", "re75"]

@@ -668,7 +668,8 @@ def test_failed_lp_falls_back_to_a_vertex(monkeypatch, replacement, message):
     monkeypatch.setattr("stackdr.search._range_lp.highs_range_lp", replacement)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        result = fit(tie_break=False)
+        # Both sides searched (the default fixes the outcome side at the stacking weights).
+        result = fit(tie_break=False, outcome_side="search")
     assert any(message in str(w.message) for w in caught if w.category is RuntimeWarning)
     _finite_result(result)
     for record in ("alpha", "beta"):

@@ -126,9 +126,9 @@ class BlendEstimator(BaseEstimator):
         Among weights within ``tie_break_scale`` standard errors of the optimum, take those
         closest to the prediction-loss stacking weights.
     tie_break_scale : float
-        The constant c of the tolerance c x (SE of the pair contrast attaining the range); 0.5
-        by default, chosen with ``stacked_propensity`` and ``contrast_z`` on paired Monte Carlo
-        evidence (README, "Which default").
+        The constant c of the tolerance c x (SE of the pair contrast attaining the range); 0.25
+        by default, chosen with ``stacked_propensity``, ``outcome_side`` and ``contrast_z`` on
+        paired Monte Carlo evidence (README, "Which default").
     stacked_propensity : bool
         With the riesz blend, add the prediction-loss stacked propensity (the probability-scale
         blend of the propensity learners at their prediction-loss stacking weights) as one more
@@ -141,8 +141,18 @@ class BlendEstimator(BaseEstimator):
         the probability blend the stacked propensity already is the point alpha = stacking
         weights of the search), and so is a continuous treatment (whose weight side is linear
         in E[A | X]) or a single propensity learner.
+    outcome_side : {"stacking", "search"}
+        How the outcome learners are weighted. ``"stacking"`` (default): by least-squares
+        stacking (NNLS, normalised), and the search chooses the propensity side only (under
+        the mixed criterion the same propensity weights as with ``"search"``; under minimax
+        those minimising the criterion at the stacking outcome weights). Least squares already
+        targets the outcome regression's own L2 error, the factor of the DR bias on that side,
+        while log-loss stacking of the propensity does not target the error of the inverse
+        weights, the factor on the other side; in the paired studies the searched outcome
+        weights added error (README, "Which default"). ``"search"``: the mixed-minimax search
+        chooses both sides (the earlier default).
     contrast_z : float
-        The contrast test (default 2; 0 turns it off): the headline keeps the searched weights
+        The contrast test (default 1.5; 0 turns it off): the headline keeps the searched weights
         only when their estimate differs from the prediction-loss stacking estimate by more than
         ``contrast_z`` paired influence-function SEs; otherwise it uses prediction-loss
         stacking's nuisances. The searched weights stay in the table as the row
@@ -217,9 +227,10 @@ class BlendEstimator(BaseEstimator):
         blend: str = "riesz",
         criterion: str = "mixed",
         tie_break: bool = True,
-        tie_break_scale: float = 0.5,
+        tie_break_scale: float = 0.25,
         stacked_propensity: bool = True,
-        contrast_z: float = 2.0,
+        outcome_side: str = "stacking",
+        contrast_z: float = 1.5,
         directions: str = "all",
         direction_tolerance: float = 0.25,
         clip: float = 0.01,
@@ -250,6 +261,7 @@ class BlendEstimator(BaseEstimator):
         self.tie_break = tie_break
         self.tie_break_scale = tie_break_scale
         self.stacked_propensity = stacked_propensity
+        self.outcome_side = outcome_side
         self.contrast_z = contrast_z
         self.directions = directions
         self.direction_tolerance = direction_tolerance
@@ -383,6 +395,7 @@ class BlendEstimator(BaseEstimator):
             tie_break=self.tie_break,
             tie_break_scale=float(self.tie_break_scale),
             contrast_z=float(self.contrast_z),
+            outcome_side=self.outcome_side,
         )
 
     def prepare_analysis(

@@ -59,12 +59,13 @@ NOT_SEPARATED = (
 
 DEFAULT_WEIGHTING = (
     "Default weighting (riesz blend with the prediction-loss stacked propensity column, "
-    "tie-break c = 0.5, contrast test at z = 2), chosen by paired Monte Carlo studies (README, "
-    "'Which default'): the target-aimed weights replace prediction-loss stacking only when they "
-    "move the estimate by more than twice its paired SE. Where every learner is good, or all "
-    "share one bias, the headline is then usually prediction-loss stacking's; the gain over it "
-    "is largest with flexible libraries and large samples, where the target-aimed weights "
-    "remove a bias the data can detect."
+    "tie-break c = 0.25, outcome learners weighted by least-squares stacking, contrast test at "
+    "z = 1.5), chosen by paired Monte Carlo studies (README, 'Which default'): the target-aimed "
+    "propensity weights replace prediction-loss stacking's only when they move the estimate by "
+    "more than 1.5 paired SEs. Where every learner is good, or all share one bias, the headline "
+    "is then usually prediction-loss stacking's; the gain over it is largest with flexible "
+    "libraries and large samples, where the target-aimed weights remove a bias the data can "
+    "detect."
 )
 
 
@@ -224,8 +225,9 @@ class BlendResult:
         if (
             used.get("blend") == "riesz"
             and used.get("stacked_propensity")
-            and used.get("tie_break_scale") == 0.5
-            and used.get("contrast_z") == 2.0
+            and used.get("tie_break_scale") == 0.25
+            and used.get("outcome_side") == "stacking"
+            and used.get("contrast_z") == 1.5
         ):
             notes.append(DEFAULT_WEIGHTING)
         main = self.estimators[0]

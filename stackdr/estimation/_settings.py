@@ -24,7 +24,7 @@ from typing import Any
 from stackdr.core import BLENDS, TARGET_NAMES
 from stackdr.errors import InputError
 from stackdr.estimation._numbers import DEFAULT_DIGITS
-from stackdr.search import CRITERIA
+from stackdr.search import CRITERIA, OUTCOME_SIDES
 
 DIRECTIONS = ("all", "credible")
 BOOTSTRAP_KINDS = ("multinomial", "bayesian", "refit")
@@ -220,7 +220,7 @@ _TABLE = (
     ),
     Setting(
         "tie_break_scale",
-        0.5,
+        0.25,
         "number",
         "tie-break tolerance in standard errors",
         low=0,
@@ -234,8 +234,16 @@ _TABLE = (
         "search (riesz blend)",
     ),
     Setting(
+        "outcome_side",
+        "stacking",
+        "text",
+        "outcome learners weighted by least-squares stacking (the search then picks the "
+        "propensity side only) or by the target-aimed search",
+        OUTCOME_SIDES,
+    ),
+    Setting(
         "contrast_z",
-        2.0,
+        1.5,
         "number",
         "keep the target-aimed weights only when their estimate differs from prediction-loss "
         "stacking's by more than Z paired SEs (0: always keep them)",

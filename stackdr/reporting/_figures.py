@@ -210,7 +210,8 @@ def sensitivity_profiles(results: dict) -> Figure:
             table["rows"],
             Psi,
             table["columns"],
-            [_num(v) for v in at["by_outcome_learner"].values()],
+            # by name, so a learner missing from the record shows as a gap, not a misalignment
+            [_num(at["by_outcome_learner"].get(name)) for name in table["columns"]],
             directions["outcome"],
             "outcome learner",
         ),
@@ -219,7 +220,7 @@ def sensitivity_profiles(results: dict) -> Figure:
             table["columns"],
             Psi.T,
             table["rows"],
-            [_num(v) for v in at["by_propensity_learner"].values()],
+            [_num(at["by_propensity_learner"].get(name)) for name in table["rows"]],
             directions["propensity"],
             "propensity learner",
         ),

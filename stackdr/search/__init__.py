@@ -27,6 +27,7 @@ from stackdr.search._range_lp import minimise_range_cvxpy, minimise_range_lp
 from stackdr.search._records import SolveResult, WeightSearch
 from stackdr.search._selection import (
     CRITERIA,
+    OUTCOME_SIDES,
     SearchSettings,
     discrete_pairs,
     pseudo_risk,
@@ -42,6 +43,7 @@ __all__ = [
     "COMPARISONS",
     "CRITERIA",
     "ESTIMATOR_ORDER",
+    "OUTCOME_SIDES",
     "MAIN",
     "MINIMAX_PAIR",
     "MIXED_PAIR",

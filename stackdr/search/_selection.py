@@ -13,6 +13,8 @@ from stackdr.core import minimax_risk, mixed_risk, outcome_sensitivity, weight_s
 from stackdr.search._weights import search_weights
 
 CRITERIA = ("mixed", "minimax")
+#: How the outcome learners are weighted (setting ``outcome_side``).
+OUTCOME_SIDES = ("stacking", "search")
 
 
 @dataclass(frozen=True)
@@ -29,6 +31,9 @@ class SearchSettings:
         estimate differs from the prediction-loss stacking estimate by more than z paired
         standard errors; otherwise the stacking nuisances are used (see
         :class:`~stackdr.search.WeightContext`).
+    outcome_side : "search" (the search chooses the outcome weights too) or "stacking" (the
+        outcome weights are the least-squares stacking weights, the outcome anchor of
+        :func:`run_search`; the search chooses the propensity side only).
     """
 
     criterion: str = "mixed"
@@ -37,6 +42,7 @@ class SearchSettings:
     tie_break_scale: float = 1.0
     resolution: int | None = None
     contrast_z: float = 0.0
+    outcome_side: str = "search"
 
 
 def pseudo_risk(criterion: str, phi_alpha, chi_beta, psi, masks) -> float:
@@ -129,7 +135,11 @@ def smoothed_pair_weights(
 
 
 def run_search(Psi, settings: SearchSettings, *, phi=None, anchors, tolerance, masks):
-    """The target-aimed search: pure minimiser, then the tie-break when enabled."""
+    """The target-aimed search: pure minimiser, then the tie-break when enabled.
+
+    ``anchors`` is ``(propensity anchor, least-squares stacking weights of the outcome
+    learners)``; with ``settings.outcome_side == "stacking"`` the latter are the outcome
+    weights and the search chooses the propensity side only."""
     return search_weights(
         Psi,
         phi=phi,
@@ -138,6 +148,7 @@ def run_search(Psi, settings: SearchSettings, *, phi=None, anchors, tolerance, m
         anchors=anchors,
         masks=masks,
         resolution=settings.resolution,
+        outcome_weights=anchors[1] if settings.outcome_side == "stacking" else None,
     )
 
 

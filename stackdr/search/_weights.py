@@ -47,6 +47,7 @@ def search_weights(
     masks: tuple[ArrayLike | None, ArrayLike | None] | None = None,
     resolution: int | None = None,
     seed: int = 0,
+    outcome_weights: ArrayLike | None = None,
 ) -> WeightSearch:
     """Choose propensity-side weights alpha and outcome-side weights beta for a pair table.
 
@@ -81,6 +82,12 @@ def search_weights(
         :func:`grid_refine` for the grid-based steps (the LP steps ignore it).
     seed : int, default 0
         Seed for :func:`grid_refine`.
+    outcome_weights : array_like, optional
+        Fixed outcome-side weights (the least-squares stacking weights in the estimator's
+        default): the search then chooses the propensity side only, alpha minimising
+        ``S_out`` (``"mixed"``, the same alpha as without the fixed side) or ``sqrt(R_mm)`` at
+        these outcome weights (``"minimax"``), with the propensity side's tie-break; the outcome
+        side has no search and no tie-break (its record, ``"beta"``, has method ``"fixed"``).
 
     Returns
     -------
@@ -110,11 +117,20 @@ def search_weights(
                 checked_weights(anchors[1], [K2], "beta anchor"),
             ]
         )
-    search = _search_mixed if criterion == "mixed" else _search_minimax
-    records = search(pair, vertices_only, resolution, seed, tolerance, anchor)
+    if outcome_weights is not None:
+        # The outcome side held (no search, no tie-break); the propensity side by the criterion.
+        fixed = checked_weights(outcome_weights, [K2], "outcome weights")
+        side = _fixed_outcome_side(pair, criterion, fixed)
+        records = _alpha_side(pair, side, (vertices_only, resolution, seed, tolerance, anchor))
+        records["beta"] = SolveResult(
+            fixed, float(pair.s_ps(fixed[None])[0]), "optimal", "fixed", 0.0
+        )
+    else:
+        search = _search_mixed if criterion == "mixed" else _search_minimax
+        records = search(pair, vertices_only, resolution, seed, tolerance, anchor)
     # Tie-break records come after the pure ones, so they overwrite them here.
     final = {key.removesuffix("_tie_break"): rec.weights for key, rec in records.items()}
-    if criterion == "mixed":
+    if "joint" not in final:
         alpha, beta = final["alpha"], final["beta"]
     else:
         alpha, beta = final["joint"][:K1], final["joint"][K1:]
@@ -191,40 +207,15 @@ def _search_mixed(
     """R_mix separates: alpha minimises S_out, beta minimises S_ps (linear in beta for any
     blend, hence always an LP unless vertices only)."""
     K1, K2 = pair.table.shape
-    records: dict[str, SolveResult] = {}
+    options = (vertices_only, resolution, seed, tolerance, anchor)
+    records = _alpha_side(pair, (pair.s_out, pair.s_out_pieces, pair.riesz), options)
     if vertices_only:
-        records["alpha"] = grid_refine(pair.s_out, [K1], 1, refine=False)
         records["beta"] = grid_refine(pair.s_ps, [K2], 1, refine=False)
     else:
-        records["alpha"] = (
-            minimise_range_lp(pair.table, pair.out_mask)
-            if pair.riesz
-            else grid_refine(pair.s_out, [K1], resolution, lower_bound=0.0, seed=seed)
-        )
         records["beta"] = minimise_range_lp(pair.table.T, pair.ps_mask)
     if tolerance is None:
         return records
-
-    alpha_pure, beta_pure = records["alpha"], records["beta"]
-    tau = _side_tolerance(tolerance, "propensity", alpha_pure.weights)
-    if vertices_only:
-        records["alpha_tie_break"] = vertex_tie_break(
-            pair.s_out, [K1], alpha_pure, tau, anchor[:K1]
-        )
-    elif pair.riesz:
-        records["alpha_tie_break"] = tie_break_range(
-            pair.table, alpha_pure, tau, anchor[:K1], pair.out_mask
-        )
-    else:
-        records["alpha_tie_break"] = tie_break_general(
-            pair.s_out,
-            [K1],
-            alpha_pure.objective,
-            tau,
-            anchor[:K1],
-            alpha_pure.weights,
-            pieces=pair.s_out_pieces,
-        )
+    beta_pure = records["beta"]
     tau = _side_tolerance(tolerance, "outcome", beta_pure.weights)
     if vertices_only:
         records["beta_tie_break"] = vertex_tie_break(pair.s_ps, [K2], beta_pure, tau, anchor[K1:])
@@ -233,6 +224,65 @@ def _search_mixed(
             pair.table.T, beta_pure, tau, anchor[K1:], pair.ps_mask
         )
     return records
+
+
+def _alpha_side(pair: _PairObjectives, side: tuple, options: tuple) -> dict[str, SolveResult]:
+    """One propensity-side search: the pure minimiser of ``objective`` over alpha, then its
+    tie-break when a tolerance is given (records ``"alpha"``, ``"alpha_tie_break"``).
+
+    ``side`` is ``(objective, pieces, exact)``: the batch objective over alpha, its smooth
+    pieces (for the general tie-break), and whether it is S_out of the riesz blend (an exact
+    range LP and range tie-break). ``options`` is ``(vertices_only, resolution, seed,
+    tolerance, anchor)`` as in :func:`_search_mixed`."""
+    objective, pieces, exact = side
+    vertices_only, resolution, seed, tolerance, anchor = options
+    K1 = pair.K1
+    if vertices_only:
+        alpha_pure = grid_refine(objective, [K1], 1, refine=False)
+    elif exact:
+        alpha_pure = minimise_range_lp(pair.table, pair.out_mask)
+    else:
+        alpha_pure = grid_refine(objective, [K1], resolution, lower_bound=0.0, seed=seed)
+    records = {"alpha": alpha_pure}
+    if tolerance is None:
+        return records
+    tau = _side_tolerance(tolerance, "propensity", alpha_pure.weights)
+    if vertices_only:
+        records["alpha_tie_break"] = vertex_tie_break(objective, [K1], alpha_pure, tau, anchor[:K1])
+    elif exact:
+        records["alpha_tie_break"] = tie_break_range(
+            pair.table, alpha_pure, tau, anchor[:K1], pair.out_mask
+        )
+    else:
+        records["alpha_tie_break"] = tie_break_general(
+            objective,
+            [K1],
+            alpha_pure.objective,
+            tau,
+            anchor[:K1],
+            alpha_pure.weights,
+            pieces=pieces,
+        )
+    return records
+
+
+def _fixed_outcome_side(pair: _PairObjectives, criterion: str, beta: np.ndarray) -> tuple:
+    """``(objective, pieces, exact)`` of the propensity side with the outcome weights held at
+    ``beta``: S_out for the mixed criterion (R_mix separates, so this is the unrestricted
+    search's alpha), sqrt(R_mm) at that beta for minimax."""
+    if criterion == "mixed":
+        return pair.s_out, pair.s_out_pieces, pair.riesz
+
+    def stacked(A: np.ndarray) -> np.ndarray:
+        return np.hstack([A, np.broadcast_to(beta, (A.shape[0], beta.size))])
+
+    def objective(A: np.ndarray) -> np.ndarray:
+        return pair.root_minimax(stacked(A))
+
+    def pieces(A: np.ndarray) -> np.ndarray:
+        return pair.minimax_pieces(stacked(A))
+
+    return objective, pieces, False
 
 
 def _search_minimax(

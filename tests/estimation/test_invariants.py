@@ -119,11 +119,11 @@ def test_affine_outcome_changes_without_tie_break(seed, target, scale, shift, bl
     # at a numerical tolerance, so its weights (and estimates) agree to about 1e-5 relative.
     frame = data(seed)
     # The contrast test is off too: when it keeps PLS's nuisances, the headline inherits PLS's
-    # lack of shift invariance.
-    base = fit(frame, target, tie_break=False, contrast_z=0, blend=blend)
-    moved = fit(
-        frame.assign(y=scale * frame.y + shift), target, tie_break=False, contrast_z=0, blend=blend
-    )
+    # lack of shift invariance; so are the default's least-squares stacking outcome weights
+    # (outcome_side="search": the search chooses both sides).
+    options = dict(tie_break=False, contrast_z=0, blend=blend, outcome_side="search")
+    base = fit(frame, target, **options)
+    moved = fit(frame.assign(y=scale * frame.y + shift), target, **options)
     keep = [row.name != PLS for row in base.estimators]
     expected = scale * estimates(base)[keep] + (shift if _is_mean(target) else 0.0)
     size = abs(scale) * np.abs(estimates(base)).max() + abs(shift)
