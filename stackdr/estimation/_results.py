@@ -21,6 +21,7 @@ from stackdr.estimation._diagnostics import (
     sampling_summary,
 )
 from stackdr.estimation._numbers import DEFAULT_DIGITS, number_text
+from stackdr.estimation._settings import SETTINGS
 from stackdr.estimation._summary import (
     ResultSummary,
     interval_sentence,
@@ -66,6 +67,16 @@ DEFAULT_WEIGHTING = (
     "is then usually prediction-loss stacking's; the gain over it is largest with flexible "
     "libraries and large samples, where the target-aimed weights remove a bias the data can "
     "detect."
+)
+
+#: The settings whose defaults make up the weighting that sentence describes; the note appears
+#: when a fit used all of them (values read from the settings table, not repeated here).
+WEIGHTING_SETTINGS = (
+    "blend",
+    "stacked_propensity",
+    "tie_break_scale",
+    "outcome_side",
+    "contrast_z",
 )
 
 
@@ -222,13 +233,7 @@ class BlendResult:
         used = self.settings
         if self.contrast is not None and self.contrast.sentence():
             notes.append(self.contrast.sentence(number_text))
-        if (
-            used.get("blend") == "riesz"
-            and used.get("stacked_propensity")
-            and used.get("tie_break_scale") == 0.25
-            and used.get("outcome_side") == "stacking"
-            and used.get("contrast_z") == 1.5
-        ):
+        if all(used.get(name) == SETTINGS[name].default for name in WEIGHTING_SETTINGS):
             notes.append(DEFAULT_WEIGHTING)
         main = self.estimators[0]
         notes += [blend_note(main, row) for row in self.estimators[1:] if row.blend != main.blend]

@@ -115,3 +115,11 @@ def test_bootstrap_replicates_use_their_own_stacking_weights():
     assert np.ptp(betas[0][:, 0]) > 0
     searched = fit(bootstrap=40, outcome_side="search", contrast_z=0, tie_break=False)
     assert np.abs(searched.bootstrap.beta.to_numpy() - betas[0]).max() > 1e-3
+
+
+def test_default_weighting_note_only_at_the_default_weighting():
+    from stackdr.estimation._results import DEFAULT_WEIGHTING
+
+    assert DEFAULT_WEIGHTING in fit().notes
+    assert DEFAULT_WEIGHTING not in fit(outcome_side="search").notes
+    assert DEFAULT_WEIGHTING not in fit(contrast_z=2.0).notes
