@@ -55,6 +55,13 @@ SETS = {
 }
 N = 1000
 BOOTSTRAP = 200
+
+
+def study_file(which: str) -> Path:
+    """The resumable study file of a design set."""
+    return RESULTS / f"{SETS[which][0]}.sqlite"
+
+
 FOCUS = ("target-aimed stacking", "prediction-loss stacking")
 
 
@@ -75,8 +82,8 @@ def coverage(frame: pd.DataFrame, low: str, high: str) -> dict:
 
 
 def report(which: str = "main") -> None:
-    stem, out, designs = SETS[which]
-    path = RESULTS / f"{stem}.sqlite"
+    _, out, designs = SETS[which]
+    path = study_file(which)
     if not path.exists():
         print("no results yet")
         return
@@ -176,14 +183,13 @@ def main() -> None:
     )
     args = parser.parse_args()
     which = "wider" if args.wider else "main"
-    stem, _, designs = SETS[which]
     RESULTS.mkdir(parents=True, exist_ok=True)
     if not args.report:
         replicate = make_replicate("default", bootstrap=BOOTSTRAP)
         for reps in args.stages:
             run = run_study(
-                RESULTS / f"{stem}.sqlite",
-                designs,
+                study_file(which),
+                SETS[which][2],
                 [N],
                 reps,
                 replicate,

@@ -6,17 +6,17 @@ python benchmarks/default_choice/fold_contrast_table.py <results>/default_choice
 """
 
 import sys, numpy as np, pandas as pd
-from scipy import stats
 
 
 def rules(g):
     K = 5
-    out = {}
+    out, stat = {}, {}
     for k in ("r05", "v0.5", "v0.25"):
         dk = g[[f"d{j}_{k}" for j in range(K)]].to_numpy()
         d = g[f"est_{k}"] - g.est_pls
         t = dk.mean(1) / (dk.std(1, ddof=1) / np.sqrt(K))
         zi = np.abs(d) / g[f"sed_{k}"]
+        stat[k] = zi, t
         out[f"{k} raw"] = g[f"est_{k}"]
         out[f"{k} IF z2"] = np.where(zi > 2, g[f"est_{k}"], g.est_pls)
         for c in (2.776, 4.6):
@@ -27,9 +27,7 @@ def rules(g):
         out[f"{k} keep"] = (zi > 2) & (np.abs(t) > 2.776)
     # cascade
     v = out["v0.5 IF z2"]
-    dk = g[[f"d{j}_r05" for j in range(K)]].to_numpy()
-    t = dk.mean(1) / (dk.std(1, ddof=1) / np.sqrt(K))
-    zi = np.abs(g.est_r05 - g.est_pls) / g.sed_r05
+    zi, t = stat["r05"]
     out["cascade r05(IFz2&t)->v0.5 z2"] = np.where((zi > 2) & (np.abs(t) > 2.776), g.est_r05, v)
     return out
 

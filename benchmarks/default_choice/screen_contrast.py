@@ -55,27 +55,46 @@ def run_cached(seed: int, row_fn, name: str) -> None:
         pd.DataFrame(rows).to_csv(screen.RESULTS / name, index=False)
 
 
-def row(cell, rep):
+def replicate_setup(cell, rep):
+    """The cached replicate analysed by :func:`riesz_analysis`: ``(data, result, analysis,
+    inputs of the first repeat, the search's row)``."""
     data, res = riesz_analysis(cell, rep)
+    an = res.analysis
+    return data, res, an, an.inputs[0], next(r for r in res.estimators if r.name == MAIN)
+
+
+def pls_fit(an, inp_aug):
+    """PLS's estimate on the column-augmented inputs: the stacked column's vertex with the NNLS
+    outcome weights."""
+    K1 = inp_aug.shape[0] - 1
+    return blend_estimate(inp_aug, np.eye(K1 + 1)[K1], an.stack_beta, "riesz")
+
+
+def add_paired(out, fits, pls, n, se=True):
+    """PLS's estimate and SE, then per fit its estimate (and SE when ``se``) and the paired
+    influence-function SE of its difference from PLS, as columns of ``out``."""
+    out["est_pls"], out["se_pls"] = pls.estimate, pls.se
+    for k, f in fits.items():
+        out[f"est_{k}"] = f.estimate
+        if se:
+            out[f"se_{k}"] = f.se
+        d = f.influence - pls.influence
+        out[f"sed_{k}"] = float(np.sqrt(np.mean(d**2) / n))
+    return out
+
+
+def row(cell, rep):
+    data, res, an, inp, main_row = replicate_setup(cell, rep)
+    out = {"cell": cell, "rep": rep, "truth": float(data.truth), "n": inp.n}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        an = res.analysis
-        inp = an.inputs[0]
-        out = {"cell": cell, "rep": rep, "truth": float(data.truth), "n": inp.n}
-        main_row = next(r for r in res.estimators if r.name == MAIN)
         fits = {"r05": blend_estimate(inp, main_row.alpha, main_row.beta, "riesz")}
         for c in (0.25, 0.5, 1.0, 2.0):
             a, b, _, _, inp_aug = screen_extra.pls_vertex_riesz(an, c)
             fits[f"v{c:g}"] = blend_estimate(inp_aug, a, b, "riesz")
             out[f"colw_v{c:g}"] = float(a[-1])
-        K1 = inp_aug.shape[0] - 1
-        pls = blend_estimate(inp_aug, np.eye(K1 + 1)[K1], an.stack_beta, "riesz")
-    out["est_pls"], out["se_pls"] = pls.estimate, pls.se
-    for k, f in fits.items():
-        out[f"est_{k}"], out[f"se_{k}"] = f.estimate, f.se
-        d = f.influence - pls.influence
-        out[f"sed_{k}"] = float(np.sqrt(np.mean(d**2) / inp.n))
-    return out
+        pls = pls_fit(an, inp_aug)
+    return add_paired(out, fits, pls, inp.n)
 
 
 def cached_main(row_fn, stem: str) -> None:

@@ -14,38 +14,28 @@ for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 import sys, warnings
 import numpy as np
 import screen_extra
-from screen_contrast import cached_main, riesz_analysis
-from stackdr.estimator import MAIN
+from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup
 from stackdr.pairtable import blend_estimate
 
 
 def row(cell, rep):
-    data, res = riesz_analysis(cell, rep)
-    import screen
-
-    _, _, prepared, _, cf, _, _ = screen.fit_replicate(cell, rep)
-    folds = np.asarray(cf.fold_labels)[0]
+    data, res, an, inp, main_row = replicate_setup(cell, rep)
+    folds = np.asarray(res.crossfit.fold_labels)[0]
     K = int(folds.max()) + 1
+    out = {"cell": cell, "rep": rep, "truth": float(data.truth), "n": inp.n}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        an = res.analysis
-        inp = an.inputs[0]
-        out = {"cell": cell, "rep": rep, "truth": float(data.truth), "n": inp.n}
-        main_row = next(r for r in res.estimators if r.name == MAIN)
         fits = {"r05": blend_estimate(inp, main_row.alpha, main_row.beta, "riesz")}
         for c in (0.25, 0.5):
             a, b, _, _, inp_aug = screen_extra.pls_vertex_riesz(an, c)
             fits[f"v{c:g}"] = blend_estimate(inp_aug, a, b, "riesz")
-        K1 = inp_aug.shape[0] - 1
-        pls = blend_estimate(inp_aug, np.eye(K1 + 1)[K1], an.stack_beta, "riesz")
-    out["est_pls"], out["se_pls"] = pls.estimate, pls.se
+        pls = pls_fit(an, inp_aug)
+    add_paired(out, fits, pls, inp.n)
+    # fold-wise differences from PLS: the difference plus the fold mean of the paired IF difference
     for k, f in fits.items():
-        out[f"est_{k}"], out[f"se_{k}"] = f.estimate, f.se
         d = f.influence - pls.influence
-        out[f"sed_{k}"] = float(np.sqrt(np.mean(d**2) / inp.n))
-        dd = f.estimate - pls.estimate
         for j in range(K):
-            out[f"d{j}_{k}"] = float(dd + d[folds == j].mean())
+            out[f"d{j}_{k}"] = float(f.estimate - pls.estimate + d[folds == j].mean())
     return out
 
 

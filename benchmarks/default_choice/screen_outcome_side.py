@@ -14,35 +14,27 @@ for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 import sys, warnings
 import numpy as np
 import screen_extra
-from screen_contrast import cached_main, riesz_analysis
+from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup
 from stackdr.pairtable import blend_estimate
 
 
 def row(cell, rep):
-    data, res = riesz_analysis(cell, rep)
+    data, res, an, inp, _ = replicate_setup(cell, rep)
+    out = {"cell": cell, "rep": rep, "truth": float(data.truth)}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        an = res.analysis
-        inp = an.inputs[0]
-        out = {"cell": cell, "rep": rep, "truth": float(data.truth)}
         fits = {}
         for c in (0.25, 0.5):
             a, b, ap, bp, inp_aug = screen_extra.pls_vertex_riesz(an, c)
-            K1 = inp_aug.shape[0] - 1
-            e = np.eye(K1 + 1)[K1]
+            e = np.eye(inp_aug.shape[0])[-1]
             fits[f"v{c:g}"] = blend_estimate(inp_aug, a, b, "riesz")
             fits[f"ob{c:g}"] = blend_estimate(inp_aug, e, b, "riesz")
             fits[f"pa{c:g}"] = blend_estimate(inp_aug, a, an.stack_beta, "riesz")
             out[f"bdist{c:g}"] = float(np.abs(b - an.stack_beta).sum())
             out[f"colw{c:g}"] = float(a[-1])
         fits["pure_aug"] = blend_estimate(inp_aug, ap, bp, "riesz")
-        pls = blend_estimate(inp_aug, e, an.stack_beta, "riesz")
-    out["est_pls"], out["se_pls"] = pls.estimate, pls.se
-    for k, f in fits.items():
-        out[f"est_{k}"] = f.estimate
-        d = f.influence - pls.influence
-        out[f"sed_{k}"] = float(np.sqrt(np.mean(d**2) / inp.n))
-    return out
+        pls = pls_fit(an, inp_aug)
+    return add_paired(out, fits, pls, inp.n, se=False)
 
 
 if __name__ == "__main__":

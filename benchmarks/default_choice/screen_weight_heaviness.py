@@ -12,8 +12,7 @@ for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
 import sys, warnings
 import numpy as np
 import screen, screen_extra
-from screen_contrast import cached_main, riesz_analysis
-from stackdr.estimator import MAIN
+from screen_contrast import cached_main, replicate_setup
 
 
 def feats(w, A):
@@ -26,14 +25,11 @@ def feats(w, A):
 
 
 def row(cell, rep):
-    data, res = riesz_analysis(cell, rep)
+    _, res, an, inp, main_row = replicate_setup(cell, rep)
+    A = np.asarray(res.data.A).ravel()
+    out = {"cell": cell, "rep": rep}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        an = res.analysis
-        inp = an.inputs[0]
-        A = np.asarray(screen.fit_replicate(cell, rep)[2].A).ravel()
-        main_row = next(r for r in res.estimators if r.name == MAIN)
-        out = {"cell": cell, "rep": rep}
         ws = {
             "r05": screen.observed_arm_weights(inp, main_row.alpha, "riesz"),
             "pls": screen.observed_arm_weights(inp, an.stack_alpha, "probability"),
