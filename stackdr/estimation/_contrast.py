@@ -8,6 +8,13 @@ two estimates differ by more than ``z`` paired standard errors, the standard err
 difference of their influence functions on the same rows (a Hausman-type specification test:
 Hausman 1978, Econometrica 46, 1251-1271); otherwise the headline uses PLS's nuisances.
 
+The variance guard (``contrast_guard``, k) sets the threshold to 0 when the search's estimate
+is no noisier than PLS's: influence-function SE at most k times PLS's. What the test protects
+against is a search that buys a bias reduction the data cannot show at the price of a noisier
+estimate (heavier inverse weights, as under poor overlap); without that price the searched
+weights are kept. The guard's verdict is taken on the full sample and held in the bootstrap
+replicates, like the threshold.
+
 With repeated splits the difference is that of the median-combined estimates and its SE the
 median over repeats. Sampling weights and clusters enter the SE exactly as in every other
 influence-function SE (:func:`~stackdr.core.influence_standard_error`).
@@ -15,7 +22,7 @@ influence-function SE (:func:`~stackdr.core.influence_standard_error`).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
@@ -44,6 +51,11 @@ class ContrastTest:
         Paired influence-function SE of that difference.
     used : str
         ``SEARCH_KEPT`` or ``STACKING_KEPT`` (``SEARCH_KEPT`` when the test did not run).
+    guard : float
+        The variance guard k (setting ``contrast_guard``; 0: off).
+    se_ratio : float
+        Influence-function SE of the searched weights' estimate over that of the prediction-loss
+        stacking estimate (nan when the test did not run).
     """
 
     z: float
@@ -51,10 +63,19 @@ class ContrastTest:
     difference: float = float("nan")
     se: float = float("nan")
     used: str = SEARCH_KEPT
+    guard: float = 0.0
+    se_ratio: float = float("nan")
+
+    @property
+    def guarded(self) -> bool:
+        """The variance guard passed: the searched weights are no noisier than k x PLS's."""
+        return bool(self.applies and self.guard > 0 and self.se_ratio <= self.guard)
 
     @property
     def tolerance(self) -> float | None:
-        return self.z * self.se if self.applies else None
+        if not self.applies:
+            return None
+        return 0.0 if self.guarded else self.z * self.se
 
     @property
     def statistic(self) -> float:
@@ -70,17 +91,29 @@ class ContrastTest:
                 "Contrast test not applicable: prediction-loss stacking's nuisances are not "
                 "weights of this blend, so the target-aimed weights are used as searched."
             )
+        head = (
+            "Contrast test: the target-aimed weights' estimate minus prediction-loss stacking's "
+            f"is {digits_fn(self.difference)} (paired SE {digits_fn(self.se)}, "
+            f"{self.statistic:.2f} SEs against z = {self.z:g})"
+        )
+        if self.guarded:
+            return (
+                f"{head}; their SE is {self.se_ratio:.3f} x stacking's, within the variance "
+                f"guard {self.guard:g}, so the headline uses the target-aimed weights."
+            )
         verdict = (
             "beyond the threshold, so the headline uses the target-aimed weights"
             if self.used == SEARCH_KEPT
             else "within the threshold, so the headline uses the prediction-loss stacking "
             "nuisances (the data do not show a bias that the target-aimed weights remove)"
         )
-        return (
-            "Contrast test: the target-aimed weights' estimate minus prediction-loss stacking's "
-            f"is {digits_fn(self.difference)} (paired SE {digits_fn(self.se)}, "
-            f"{self.statistic:.2f} SEs against z = {self.z:g}), {verdict}."
+        guard = (
+            f"; their SE is {self.se_ratio:.3f} x stacking's, above the variance guard "
+            f"{self.guard:g}"
+            if self.guard > 0 and np.isfinite(self.se_ratio)
+            else ""
         )
+        return f"{head}{guard}: {verdict}."
 
     def record(self) -> dict:
         return {
@@ -89,18 +122,23 @@ class ContrastTest:
             "difference": self.difference,
             "se": self.se,
             "used": self.used,
+            "guard": self.guard,
+            "se_ratio": self.se_ratio,
         }
 
 
-def contrast_test(an, search, z: float, classifier: bool) -> tuple[ContrastTest, object]:
-    """The full-sample test and the ``value`` function the weight context needs.
+def contrast_test(
+    an, search, z: float, classifier: bool, guard: float = 0.0
+) -> tuple[ContrastTest, object]:
+    """The full-sample test (with the variance guard ``guard``; 0: off) and the ``value``
+    function the weight context needs.
 
     Returns ``(test, value)``; ``value(alpha, beta)`` is the combined estimate at the search's
     blend on the full sample (None when the test does not apply).
     """
     settings = an.settings
     if not contrast_applies(settings, an.stacked, classifier, an.base_learners):
-        return ContrastTest(float(z), False), None
+        return ContrastTest(float(z), False, guard=float(guard)), None
     blend = settings.blend
     # Per-repeat fits by weights: the test's two fits are reused by ``value`` when the weight
     # context decides the headline, so each is computed once.
@@ -128,16 +166,23 @@ def contrast_test(an, search, z: float, classifier: bool) -> tuple[ContrastTest,
         stacked=an.stacked,
     )
     a0, b0 = ctx.stacking_weights
-    pairs = zip(repeat_fits(search.alpha, search.beta), repeat_fits(a0, b0), an.inputs)
+    searched, stacking = repeat_fits(search.alpha, search.beta), repeat_fits(a0, b0)
     ses = [
         float(
             influence_standard_error(
                 first.influence - second.influence, inp.sample_weight, inp.cluster_codes
             )
         )
-        for first, second, inp in pairs
+        for first, second, inp in zip(searched, stacking, an.inputs)
     ]
     se = float(np.median(ses))
+    # The estimates' own SEs are those of their rows (weighted, cluster-robust as set).
+    se_first = combine_repeats([f.estimate for f in searched], [f.se for f in searched])[1]
+    se_second = combine_repeats([f.estimate for f in stacking], [f.se for f in stacking])[1]
+    se_ratio = float(se_first / se_second) if se_second > 0 else float("inf")
     difference = float(value(search.alpha, search.beta) - value(a0, b0))
-    used = SEARCH_KEPT if abs(difference) > z * se else STACKING_KEPT
-    return ContrastTest(float(z), True, difference, se, used), value
+    test = ContrastTest(float(z), True, difference, se, SEARCH_KEPT, float(guard), se_ratio)
+    # The same rule as ``WeightContext.contrast`` applies in every bootstrap replicate.
+    if not abs(difference) > test.tolerance:
+        test = replace(test, used=STACKING_KEPT)
+    return test, value

@@ -161,6 +161,14 @@ class BlendEstimator(BaseEstimator):
         nuisances are weights of the search's blend: the riesz blend with
         ``stacked_propensity``, the probability blend, a continuous treatment or one propensity
         learner.
+    contrast_guard : float
+        The variance guard of the contrast test (default 1.05; 0 turns it off): when the
+        searched weights' influence-function SE is at most ``contrast_guard`` times that of the
+        prediction-loss stacking estimate, the searched weights are kept whatever the contrast
+        (the test's threshold becomes 0, in the bootstrap replicates too). The test protects
+        against searched weights that buy a bias reduction the data cannot show at the price of
+        a noisier estimate (heavier inverse weights); when they are no noisier there is nothing
+        to protect against. Chosen on paired Monte Carlo evidence (README, "Which default").
     directions : {"all", "credible"}
         Learners whose swaps define the perturbations: all of them (the published method), or
         only those whose out-of-fold loss is within ``direction_tolerance`` (relative) of the
@@ -231,6 +239,7 @@ class BlendEstimator(BaseEstimator):
         stacked_propensity: bool = True,
         outcome_side: str = "stacking",
         contrast_z: float = 1.5,
+        contrast_guard: float = 1.05,
         directions: str = "all",
         direction_tolerance: float = 0.25,
         clip: float = 0.01,
@@ -263,6 +272,7 @@ class BlendEstimator(BaseEstimator):
         self.stacked_propensity = stacked_propensity
         self.outcome_side = outcome_side
         self.contrast_z = contrast_z
+        self.contrast_guard = contrast_guard
         self.directions = directions
         self.direction_tolerance = direction_tolerance
         self.clip = clip
@@ -395,6 +405,7 @@ class BlendEstimator(BaseEstimator):
             tie_break=self.tie_break,
             tie_break_scale=float(self.tie_break_scale),
             contrast_z=float(self.contrast_z),
+            contrast_guard=float(self.contrast_guard),
             outcome_side=self.outcome_side,
         )
 
@@ -485,7 +496,11 @@ class BlendEstimator(BaseEstimator):
             masks=an.masks,
         )
         contrast, value = contrast_test(
-            an, search, settings.contrast_z, cf.propensity_kind == "classifier"
+            an,
+            search,
+            settings.contrast_z,
+            cf.propensity_kind == "classifier",
+            guard=settings.contrast_guard,
         )
         selections = comparison_weights(
             WeightContext(

@@ -77,6 +77,7 @@ WEIGHTING_SETTINGS = (
     "tie_break_scale",
     "outcome_side",
     "contrast_z",
+    "contrast_guard",
 )
 
 

@@ -251,6 +251,16 @@ _TABLE = (
         metavar="Z",
     ),
     Setting(
+        "contrast_guard",
+        1.05,
+        "number",
+        "variance guard of the contrast test: keep the target-aimed weights whatever the "
+        "contrast when their influence-function SE is at most K x prediction-loss stacking's "
+        "(0: off)",
+        low=0,
+        metavar="K",
+    ),
+    Setting(
         "directions", "all", "text", "learners whose swaps define the perturbations", DIRECTIONS
     ),
     Setting(

@@ -31,6 +31,9 @@ class SearchSettings:
         estimate differs from the prediction-loss stacking estimate by more than z paired
         standard errors; otherwise the stacking nuisances are used (see
         :class:`~stackdr.search.WeightContext`).
+    contrast_guard : the variance guard of the contrast test (0: off): when the searched weights'
+        influence-function SE is at most this multiple of the stacking estimate's, the test's
+        threshold is 0 (the searched weights are kept).
     outcome_side : "search" (the search chooses the outcome weights too) or "stacking" (the
         outcome weights are the least-squares stacking weights, the outcome anchor of
         :func:`run_search`; the search chooses the propensity side only).
@@ -42,6 +45,7 @@ class SearchSettings:
     tie_break_scale: float = 1.0
     resolution: int | None = None
     contrast_z: float = 0.0
+    contrast_guard: float = 0.0
     outcome_side: str = "search"
 
 

@@ -6,7 +6,10 @@ Hausman 1978, Econometrica 46, 1251-1271). Checked here: the rule flips exactly 
 statistic; z = 0 is the search as before; the fallback is exactly PLS's estimate; the paired SE
 is the paired-difference SE of the exported row terms; the bootstrap reruns the rule; unit
 sampling weights change nothing and singleton clusters scale the SE by sqrt(n / (n - 1)); the
-test is skipped, and says so, where PLS's nuisances are not weights of the blend.
+test is skipped, and says so, where PLS's nuisances are not weights of the blend. The variance
+guard (``contrast_guard``, k; off in the tests of the threshold itself): the searched weights
+are kept whatever the contrast when their IF SE is at most k x PLS's, the rule flips exactly at
+the observed SE ratio, and the bootstrap holds the verdict.
 """
 
 import warnings
@@ -32,7 +35,7 @@ OUTCOME = {"ols": LinearRegression(), "mean": DummyRegressor()}
 def fit(seed=31, n=800, **settings):
     X, A, Y, _ = confounded_data(np.random.default_rng(seed), n)
     # Without the tie-break the search lands away from the PLS weights, so there is a contrast.
-    params = {"bootstrap": 0, "seed": 4, "tie_break": False, **settings}
+    params = {"bootstrap": 0, "seed": 4, "tie_break": False, "contrast_guard": 0, **settings}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return BlendEstimator("ate", PROPENSITY, OUTCOME, **params).fit(X, A, Y)
@@ -114,7 +117,7 @@ def test_unit_sampling_weights_change_nothing(base):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         weighted = BlendEstimator(
-            "ate", PROPENSITY, OUTCOME, bootstrap=0, seed=4, tie_break=False
+            "ate", PROPENSITY, OUTCOME, bootstrap=0, seed=4, tie_break=False, contrast_guard=0
         ).fit(X, A, Y, weights=np.ones(800))
     assert weighted.contrast.difference == pytest.approx(base.contrast.difference, rel=1e-9)
     assert weighted.contrast.se == pytest.approx(base.contrast.se, rel=1e-9)
@@ -143,7 +146,7 @@ def test_singleton_clusters_scale_the_se_by_the_small_sample_factor():
     n = 800
     X, A, Y, _ = confounded_data(np.random.default_rng(31), n)
     folds = np.random.default_rng(2).permutation(np.arange(n) % 5)
-    settings = {"bootstrap": 0, "seed": 4, "tie_break": False, "folds": folds}
+    settings = {"bootstrap": 0, "seed": 4, "tie_break": False, "folds": folds, "contrast_guard": 0}
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         rows = BlendEstimator("ate", PROPENSITY, OUTCOME, **settings).fit(X, A, Y)
@@ -152,3 +155,40 @@ def test_singleton_clusters_scale_the_se_by_the_small_sample_factor():
         )
     assert clustered.contrast.difference == pytest.approx(rows.contrast.difference, rel=1e-9)
     assert clustered.contrast.se == pytest.approx(rows.contrast.se * np.sqrt(n / (n - 1)), rel=1e-9)
+
+
+def test_guard_flips_at_the_observed_se_ratio(base):
+    # The ratio is that of the two rows' own influence-function SEs (searched weights over PLS).
+    ratio = base.contrast.se_ratio
+    assert ratio == pytest.approx(row(base, UNTESTED).se / row(base, PLS).se, rel=1e-9)
+    # A huge z alone always falls back on PLS; the guard keeps the search when the ratio is
+    # within it and only then.
+    within = fit(contrast_z=1e9, contrast_guard=ratio * 1.001)
+    beyond = fit(contrast_z=1e9, contrast_guard=ratio * 0.999)
+    assert within.contrast.guarded and within.contrast.used == "target-aimed weights"
+    assert within.estimate == row(within, UNTESTED).estimate
+    assert within.contrast.tolerance == 0.0
+    assert not beyond.contrast.guarded
+    assert beyond.contrast.used == "prediction-loss stacking nuisances"
+    assert beyond.estimate == pytest.approx(row(beyond, PLS).estimate, rel=1e-10)
+    assert any("variance guard" in note for note in within.notes)
+    # Off (0) is the threshold alone.
+    off = fit(contrast_z=1e9, contrast_guard=0)
+    assert not off.contrast.guarded and off.estimate == beyond.estimate
+
+
+def test_guard_holds_in_the_bootstrap(base):
+    ratio = base.contrast.se_ratio
+    res = fit(n=800, bootstrap=100, contrast_z=1e9, contrast_guard=ratio * 1.001)
+    boot = res.bootstrap.estimates
+    # Every replicate keeps its own searched weights (threshold 0 held from the full sample).
+    assert np.allclose(boot[MAIN], boot[UNTESTED], rtol=0, atol=1e-10)
+    assert not np.allclose(boot[MAIN], boot[PLS], rtol=0, atol=1e-6)
+
+
+def test_results_file_carries_the_guard(base):
+    d = result_to_dict(fit(contrast_guard=1.05))
+    validate_results(d)
+    record = d["contrast_test"]
+    assert record["guard"] == 1.05
+    assert record["se_ratio"] == pytest.approx(base.contrast.se_ratio, rel=1e-9)
