@@ -56,12 +56,17 @@ def table(frame: pd.DataFrame) -> pd.DataFrame:
     return pd.DataFrame(out).T
 
 
-if __name__ == "__main__":
-    for path in sys.argv[1:]:
-        frame = table(pd.read_csv(path))
+def print_tables(table_fn, paths) -> None:
+    """Markdown table ``table_fn(rows)`` of every rows file in ``paths``."""
+    for path in paths:
+        frame = table_fn(pd.read_csv(path))
         print(f"## {path}\n")
         print("| rule | " + " | ".join(frame.columns) + " |")
         print("|---" * (len(frame.columns) + 1) + "|")
         for name, r in frame.iterrows():
             print(f"| {name} | " + " | ".join(r) + " |")
         print()
+
+
+if __name__ == "__main__":
+    print_tables(table, sys.argv[1:])
