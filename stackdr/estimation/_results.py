@@ -61,10 +61,11 @@ NOT_SEPARATED = (
 DEFAULT_WEIGHTING = (
     "Default weighting (riesz blend with the prediction-loss stacked propensity column, "
     "tie-break c = 0.25, outcome learners weighted by least-squares stacking, contrast test at "
-    "z = 1.5), chosen by paired Monte Carlo studies (README, 'Which default'): the target-aimed "
-    "propensity weights replace prediction-loss stacking's only when they move the estimate by "
-    "more than 1.5 paired SEs. Where every learner is good, or all share one bias, the headline "
-    "is then usually prediction-loss stacking's; the gain over it is largest with flexible "
+    "z = 1.5 with variance guard 1.05), chosen by paired Monte Carlo studies (README, 'Which "
+    "default'): the target-aimed propensity weights replace prediction-loss stacking's when "
+    "they move the estimate by more than 1.5 paired SEs or their SE is at most 1.05 x "
+    "stacking's. Where every learner is good, or all share one bias, the headline is then "
+    "usually prediction-loss stacking's or close to it; the gain over it is largest with flexible "
     "libraries and large samples, where the target-aimed weights remove a bias the data can "
     "detect."
 )
