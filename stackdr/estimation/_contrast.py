@@ -91,12 +91,17 @@ class ContrastTest:
                 "Contrast test not applicable: prediction-loss stacking's nuisances are not "
                 "weights of this blend, so the target-aimed weights are used as searched."
             )
+        if self.difference == 0 and self.se == 0:
+            return (
+                "Contrast test: the target-aimed weights give exactly prediction-loss stacking's "
+                "estimate (the tie-break returned its nuisances), so there is nothing to test."
+            )
         head = (
             "Contrast test: the target-aimed weights' estimate minus prediction-loss stacking's "
             f"is {digits_fn(self.difference)} (paired SE {digits_fn(self.se)}, "
             f"{self.statistic:.2f} SEs against z = {self.z:g})"
         )
-        if self.guarded:
+        if self.guarded and self.used == SEARCH_KEPT:
             return (
                 f"{head}; their SE is {self.se_ratio:.3f} x stacking's, within the variance "
                 f"guard {self.guard:g}, so the headline uses the target-aimed weights."

@@ -192,3 +192,17 @@ def test_results_file_carries_the_guard(base):
     record = d["contrast_test"]
     assert record["guard"] == 1.05
     assert record["se_ratio"] == pytest.approx(base.contrast.se_ratio, rel=1e-9)
+
+
+def test_sentences_of_the_guard_and_of_no_contrast():
+    from stackdr.estimation._contrast import SEARCH_KEPT, STACKING_KEPT, ContrastTest
+
+    # The search returned PLS's own nuisances (difference and SE exactly 0): nothing to test.
+    same = ContrastTest(1.5, True, 0.0, 0.0, STACKING_KEPT, 1.05, 1.0)
+    assert "nothing to test" in same.sentence() and "guard" not in same.sentence()
+    kept = ContrastTest(1.5, True, 0.1, 0.2, SEARCH_KEPT, 1.05, 1.02)
+    assert kept.guarded and kept.tolerance == 0.0
+    assert "within the variance guard 1.05" in kept.sentence()
+    above = ContrastTest(1.5, True, 0.1, 0.2, STACKING_KEPT, 1.05, 1.2)
+    assert not above.guarded and above.tolerance == pytest.approx(0.3)
+    assert "above the variance guard" in above.sentence()
