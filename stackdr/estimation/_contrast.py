@@ -132,18 +132,17 @@ class ContrastTest:
         }
 
 
-def contrast_test(
-    an, search, z: float, classifier: bool, guard: float = 0.0
-) -> tuple[ContrastTest, object]:
-    """The full-sample test (with the variance guard ``guard``; 0: off) and the ``value``
-    function the weight context needs.
+def contrast_test(an, search, classifier: bool) -> tuple[ContrastTest, object]:
+    """The full-sample test (threshold ``contrast_z`` and variance guard ``contrast_guard`` of
+    the analysis's settings) and the ``value`` function the weight context needs.
 
     Returns ``(test, value)``; ``value(alpha, beta)`` is the combined estimate at the search's
     blend on the full sample (None when the test does not apply).
     """
     settings = an.settings
+    z, guard = float(settings.contrast_z), float(settings.contrast_guard)
     if not contrast_applies(settings, an.stacked, classifier, an.base_learners):
-        return ContrastTest(float(z), False, guard=float(guard)), None
+        return ContrastTest(z, False, guard=guard), None
     blend = settings.blend
     # Per-repeat fits by weights: the test's two fits are reused by ``value`` when the weight
     # context decides the headline, so each is computed once.
@@ -155,9 +154,13 @@ def contrast_test(
             fits[key] = [blend_estimate(inp, alpha, beta, blend) for inp in an.inputs]
         return fits[key]
 
-    def value(alpha, beta) -> float:
+    def combined(alpha, beta) -> tuple[float, float]:
+        """Estimate and SE combined over repeats."""
         rows = repeat_fits(alpha, beta)
-        return combine_repeats([f.estimate for f in rows], [f.se for f in rows])[0]
+        return combine_repeats([f.estimate for f in rows], [f.se for f in rows])
+
+    def value(alpha, beta) -> float:
+        return combined(alpha, beta)[0]
 
     ctx = WeightContext(
         an.Psi,
@@ -182,11 +185,11 @@ def contrast_test(
     ]
     se = float(np.median(ses))
     # The estimates' own SEs are those of their rows (weighted, cluster-robust as set).
-    se_first = combine_repeats([f.estimate for f in searched], [f.se for f in searched])[1]
-    se_second = combine_repeats([f.estimate for f in stacking], [f.se for f in stacking])[1]
+    est_first, se_first = combined(search.alpha, search.beta)
+    est_second, se_second = combined(a0, b0)
     se_ratio = float(se_first / se_second) if se_second > 0 else float("inf")
-    difference = float(value(search.alpha, search.beta) - value(a0, b0))
-    test = ContrastTest(float(z), True, difference, se, SEARCH_KEPT, float(guard), se_ratio)
+    difference = float(est_first - est_second)
+    test = ContrastTest(z, True, difference, se, SEARCH_KEPT, guard, se_ratio)
     # The same rule as ``WeightContext.contrast`` applies in every bootstrap replicate.
     if not abs(difference) > test.tolerance:
         test = replace(test, used=STACKING_KEPT)

@@ -495,13 +495,7 @@ class BlendEstimator(BaseEstimator):
             tolerance=tolerance,
             masks=an.masks,
         )
-        contrast, value = contrast_test(
-            an,
-            search,
-            settings.contrast_z,
-            cf.propensity_kind == "classifier",
-            guard=settings.contrast_guard,
-        )
+        contrast, value = contrast_test(an, search, cf.propensity_kind == "classifier")
         selections = comparison_weights(
             WeightContext(
                 an.Psi,
