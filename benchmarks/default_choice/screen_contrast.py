@@ -50,7 +50,9 @@ def run_cached(seed: int, row_fn, name: str) -> None:
         if not d.exists():
             continue
         reps = sorted(int(q.stem) for q in d.glob("*.pkl"))
-        rows += [row_fn(cell, rep) for rep in reps]
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            rows += [row_fn(cell, rep) for rep in reps]
         print(cell, len(reps), flush=True)
         pd.DataFrame(rows).to_csv(screen.RESULTS / name, index=False)
 
@@ -68,6 +70,14 @@ def pls_fit(an, inp_aug):
     outcome weights."""
     K1 = inp_aug.shape[0] - 1
     return blend_estimate(inp_aug, np.eye(K1 + 1)[K1], an.stack_beta, "riesz")
+
+
+def searched_propensity_fit(an, c):
+    """The default's rule before its test: the stacked-column search's propensity weights at
+    tie-break scale c with PLS's least-squares outcome weights: ``(fit, column-augmented
+    inputs)``."""
+    a, _, _, _, inp_aug = screen_extra.pls_vertex_riesz(an, c)
+    return blend_estimate(inp_aug, a, an.stack_beta, "riesz"), inp_aug
 
 
 def add_paired(out, fits, pls, n, se=True):

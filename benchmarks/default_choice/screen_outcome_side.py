@@ -11,7 +11,7 @@ import os
 
 for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_v, "1")
-import sys, warnings
+import sys
 import numpy as np
 import screen_extra
 from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup
@@ -21,19 +21,17 @@ from stackdr.pairtable import blend_estimate
 def row(cell, rep):
     data, res, an, inp, _ = replicate_setup(cell, rep)
     out = {"cell": cell, "rep": rep, "truth": float(data.truth)}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        fits = {}
-        for c in (0.25, 0.5):
-            a, b, ap, bp, inp_aug = screen_extra.pls_vertex_riesz(an, c)
-            e = np.eye(inp_aug.shape[0])[-1]
-            fits[f"v{c:g}"] = blend_estimate(inp_aug, a, b, "riesz")
-            fits[f"ob{c:g}"] = blend_estimate(inp_aug, e, b, "riesz")
-            fits[f"pa{c:g}"] = blend_estimate(inp_aug, a, an.stack_beta, "riesz")
-            out[f"bdist{c:g}"] = float(np.abs(b - an.stack_beta).sum())
-            out[f"colw{c:g}"] = float(a[-1])
-        fits["pure_aug"] = blend_estimate(inp_aug, ap, bp, "riesz")
-        pls = pls_fit(an, inp_aug)
+    fits = {}
+    for c in (0.25, 0.5):
+        a, b, ap, bp, inp_aug = screen_extra.pls_vertex_riesz(an, c)
+        e = np.eye(inp_aug.shape[0])[-1]
+        fits[f"v{c:g}"] = blend_estimate(inp_aug, a, b, "riesz")
+        fits[f"ob{c:g}"] = blend_estimate(inp_aug, e, b, "riesz")
+        fits[f"pa{c:g}"] = blend_estimate(inp_aug, a, an.stack_beta, "riesz")
+        out[f"bdist{c:g}"] = float(np.abs(b - an.stack_beta).sum())
+        out[f"colw{c:g}"] = float(a[-1])
+    fits["pure_aug"] = blend_estimate(inp_aug, ap, bp, "riesz")
+    pls = pls_fit(an, inp_aug)
     return add_paired(out, fits, pls, inp.n, se=False)
 
 

@@ -22,11 +22,10 @@ import os
 
 for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_v, "1")
-import sys, warnings
+import sys
 import cvxpy as cp
 import numpy as np
-import screen_extra
-from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup
+from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup, searched_propensity_fit
 from stackdr.estimator import Analysis, noise_floor_function
 from stackdr.pairtable import blend_estimate, pair_standard_errors
 from stackdr.selection import SearchSettings, run_search
@@ -72,19 +71,15 @@ def anchored_search(an, anchor, c):
 def row(cell, rep):
     data, res, an, inp, _ = replicate_setup(cell, rep)
     out = {"cell": cell, "rep": rep, "truth": float(data.truth)}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        fits = {}
-        a, _, _, _, inp_aug = screen_extra.pls_vertex_riesz(an, 0.25)
-        fits["pa0.25"] = blend_estimate(inp_aug, a, an.stack_beta, "riesz")
-        wr = riesz_stack(inp)
-        fits["rs"] = blend_estimate(inp, wr, an.stack_beta, "riesz")
-        for j, v in enumerate(wr):
-            out[f"wr{j}"] = float(v)
-        for c in (0.25, 0.5):
-            fits[f"ra{c:g}"] = blend_estimate(inp, anchored_search(an, wr, c), an.stack_beta, "riesz")
-        pls = pls_fit(an, inp_aug)
-    return add_paired(out, fits, pls, inp.n, se=False)
+    fits = {}
+    fits["pa0.25"], inp_aug = searched_propensity_fit(an, 0.25)
+    wr = riesz_stack(inp)
+    fits["rs"] = blend_estimate(inp, wr, an.stack_beta, "riesz")
+    for j, v in enumerate(wr):
+        out[f"wr{j}"] = float(v)
+    for c in (0.25, 0.5):
+        fits[f"ra{c:g}"] = blend_estimate(inp, anchored_search(an, wr, c), an.stack_beta, "riesz")
+    return add_paired(out, fits, pls_fit(an, inp_aug), inp.n, se=False)
 
 
 if __name__ == "__main__":

@@ -14,23 +14,17 @@ import os
 
 for _v in ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_v, "1")
-import sys, warnings
-import screen_extra
-from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup
-from stackdr.pairtable import blend_estimate
+import sys
+from screen_contrast import add_paired, cached_main, pls_fit, replicate_setup, searched_propensity_fit
 
 
 def row(cell, rep):
     data, res, an, inp, _ = replicate_setup(cell, rep)
     out = {"cell": cell, "rep": rep, "truth": float(data.truth)}
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        fits = {}
-        for c in (0.25, 0.5):
-            a, _, _, _, inp_aug = screen_extra.pls_vertex_riesz(an, c)
-            fits[f"pa{c:g}"] = blend_estimate(inp_aug, a, an.stack_beta, "riesz")
-        pls = pls_fit(an, inp_aug)
-    return add_paired(out, fits, pls, inp.n, se=True)
+    fits = {}
+    for c in (0.25, 0.5):
+        fits[f"pa{c:g}"], inp_aug = searched_propensity_fit(an, c)
+    return add_paired(out, fits, pls_fit(an, inp_aug), inp.n, se=True)
 
 
 if __name__ == "__main__":
