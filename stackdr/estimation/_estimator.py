@@ -198,6 +198,11 @@ class BlendEstimator(BaseEstimator):
         refitting noise exceeds this share of the headline's bootstrap variance (default 0.05;
         0: always). The jackknife re-evaluates the estimate with each fold's models on the same
         rows, so only the fitted models change.
+    calibration_shrink : float
+        How far the refit calibration discounts its own noise (default 0.5; 0: none). The
+        variance excess of the refit replicates over the reweighting ones, x, is shrunk to
+        x * max(0, 1 - (calibration_shrink * s / x)^2) with s its jackknife SE over the paired
+        replicates, so an excess the few refits cannot tell from noise widens nothing.
     calibration_rows : int
         The gated refit calibration runs on data sets of at most this many rows (default
         20,000: each refit is a full fit); a larger flagged fit gets a note recommending
@@ -251,6 +256,7 @@ class BlendEstimator(BaseEstimator):
         interval: str = "percentile",
         calibration_refits: int = 5,
         calibration_gate: float = 0.05,
+        calibration_shrink: float = 0.5,
         calibration_rows: int = 20000,
         chunk_size: int | None = None,
         seed: int = 0,
@@ -284,6 +290,7 @@ class BlendEstimator(BaseEstimator):
         self.interval = interval
         self.calibration_refits = calibration_refits
         self.calibration_gate = calibration_gate
+        self.calibration_shrink = calibration_shrink
         self.calibration_rows = calibration_rows
         self.chunk_size = chunk_size
         self.seed = seed

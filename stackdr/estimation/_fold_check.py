@@ -21,13 +21,16 @@ is wrong and unstable it is not, and the reweighting bootstrap is then too narro
 With ``calibration_refits`` (M > 0), a reweighting bootstrap and at most ``calibration_rows``
 rows, when the jackknife variance of the headline estimate exceeds ``calibration_gate`` times
 its bootstrap variance (or always with a gate of 0), M refit replicates are run on the row draws
-of the first M reweighting replicates; each estimator's bootstrap SE and interval are widened
-by the paired ratio of the two bootstraps' spreads (:func:`~stackdr.inference.paired_refit_ratio`)
-where it exceeds 1. Replicate b of both bootstraps comes from the same generator, so the row
-draws are shared with multinomial row weights (the default); with Bayesian weights the ratio
-compares unpaired replicates (noisier). Cost: M full fits (cross-fitting included), only for
-flagged fits; the jackknife itself costs predictions only. The evidence for the rule and its
-defaults is in DEVELOPERS.md ("Honest SE with unstable learners").
+of the first M reweighting replicates; each estimator's bootstrap variance is widened by the
+refits' excess spread over the reweighting replicates on the same draws, ratio^2 - 1 where the
+ratio (:func:`~stackdr.inference.paired_refit_ratio`) exceeds 1, shrunk for the noise of so
+few pairs by ``calibration_shrink`` (:func:`~stackdr.inference.refit_excess`): an excess
+within its jackknife SE of 0 widens little or nothing. Replicate b of both bootstraps comes
+from the same generator, so the row draws are shared with multinomial row weights (the
+default); with Bayesian weights the ratio compares unpaired replicates (noisier). Cost: M full
+fits (cross-fitting included), only for flagged fits; the jackknife itself costs predictions
+only. The evidence for the rule and its defaults is in DEVELOPERS.md ("Honest SE with unstable
+learners").
 """
 
 from __future__ import annotations
@@ -51,8 +54,8 @@ from stackdr.estimation._parallel import dask_jobs, parallel_backend
 from stackdr.inference import (
     FoldSpread,
     fold_spread,
-    paired_refit_ratio,
     refit_bootstrap,
+    refit_excess,
     top_row_share,
     widen_intervals,
 )
@@ -100,6 +103,11 @@ class FoldCheck:
         The ``calibration_gate`` the share was compared with (NaN without an estimator).
     skipped : str
         Why a flagged fit was not calibrated (empty otherwise).
+    excess_se : dict of str to float
+        When the refit calibration ran: per estimator, the jackknife SE (over the paired
+        replicates) of the refits' variance excess, ratio^2 - 1 (:func:`refit_excess`).
+    shrink : float
+        The ``calibration_shrink`` the excess was shrunk with (NaN without an estimator).
     """
 
     spread: FoldSpread
@@ -114,6 +122,8 @@ class FoldCheck:
     fit_share: float = float("nan")
     gate: float = float("nan")
     skipped: str = ""
+    excess_se: dict = field(default_factory=dict)
+    shrink: float = float("nan")
 
     @property
     def flagged(self) -> bool:
@@ -176,6 +186,12 @@ class FoldCheck:
                 f" The bootstrap SE of the target-aimed estimate was widened from "
                 f"{number_text(before, 3)} to {number_text(after, 3)}, its interval likewise."
             )
+        if ratio is not None and ratio > 1 and self.shrink > 0:
+            return text + (
+                " With so few refits that excess is within its noise (calibration_shrink = "
+                f"{self.shrink:g}), so the bootstrap SE of the target-aimed estimate is "
+                "unchanged."
+            )
         return text + " The bootstrap SE of the target-aimed estimate needed no widening."
 
 
@@ -214,9 +230,12 @@ def refit_replicates(estimator, target, settings, result):
         )
 
 
-def _refit_calibration(estimator, target, result) -> tuple[dict, dict]:
+def _refit_calibration(estimator, target, result) -> tuple[dict, dict, dict]:
     """Variance to add per estimator from ``calibration_refits`` refit replicates that share
-    their row draws with the first reweighting replicates: (max(1, ratio)^2 - 1) x SE^2."""
+    their row draws with the first reweighting replicates: the excess of the refits' spread
+    over the reweighting replicates', shrunk for its noise (``calibration_shrink``;
+    :func:`~stackdr.inference.refit_excess`), times SE^2. Returns the ratios, the added
+    variances and the excesses' jackknife SEs."""
     settings = replace(
         estimator.inference_settings(),
         replicates=int(estimator.calibration_refits),
@@ -224,19 +243,22 @@ def _refit_calibration(estimator, target, result) -> tuple[dict, dict]:
     )
     refits = refit_replicates(estimator, target, settings, result)
     boot = result.bootstrap
-    ratios, added = {}, {}
+    shrink = float(getattr(estimator, "calibration_shrink", 0.0) or 0.0)
+    ratios, added, noise = {}, {}, {}
     for row in result.estimators:
         if row.name not in boot.standard_errors:
             continue
-        ratio = paired_refit_ratio(
+        ratio, excess, excess_se = refit_excess(
             refits.estimates[row.name].to_numpy(),
             boot.estimates[row.name].to_numpy(),
             row.estimate,
+            shrink,
         )
         ratios[row.name] = ratio
-        if np.isfinite(ratio) and ratio > 1:
-            added[row.name] = (ratio**2 - 1) * boot.standard_errors[row.name] ** 2
-    return ratios, added
+        noise[row.name] = excess_se
+        if excess > 0:
+            added[row.name] = excess * boot.standard_errors[row.name] ** 2
+    return ratios, added, noise
 
 
 def fold_model_jackknife(result) -> dict:
@@ -356,9 +378,9 @@ def check_folds(result, estimator=None, target=None) -> FoldCheck:
                 "interval may be too narrow"
             )
     corrected = wanted
-    added, before, ratios = {}, {}, {}
+    added, before, ratios, noise = {}, {}, {}, {}
     if corrected:
-        ratios, added = _refit_calibration(estimator, target, result)
+        ratios, added, noise = _refit_calibration(estimator, target, result)
         before = dict(boot.standard_errors)
         estimates = {row.name: row.estimate for row in result.estimators}
         result.attach_bootstrap(widen_intervals(boot, estimates, added))
@@ -375,6 +397,8 @@ def check_folds(result, estimator=None, target=None) -> FoldCheck:
         share,
         gate,
         skipped,
+        noise,
+        float(getattr(estimator, "calibration_shrink", float("nan"))),
     )
     if check.alert and not corrected and not (boot is not None and boot.kind == "refit"):
         warn_user(check.sentence(), UnstableLearnersWarning)

@@ -331,6 +331,16 @@ _TABLE = (
         metavar="G",
     ),
     Setting(
+        "calibration_shrink",
+        0.5,
+        "number",
+        "how far the refit calibration discounts its own noise: the refits' variance excess x "
+        "is shrunk to x * max(0, 1 - (S * s / x)^2), s its jackknife SE over the paired "
+        "replicates (0: no shrinkage)",
+        low=0,
+        metavar="S",
+    ),
+    Setting(
         "calibration_rows",
         20000,
         "whole",

@@ -15,6 +15,7 @@ from stackdr.inference._fold_spread import (
     FoldSpread,
     fold_spread,
     paired_refit_ratio,
+    refit_excess,
     top_row_share,
     widen_intervals,
 )
@@ -29,6 +30,7 @@ __all__ = [
     "draw_row_weights",
     "fold_spread",
     "paired_refit_ratio",
+    "refit_excess",
     "refit_bootstrap",
     "replicate_features",
     "replicate_generators",

@@ -207,6 +207,8 @@ def _fold_check(check) -> dict | None:
         "fit_variance": {str(k): plain(v) for k, v in check.fit_variance.items()},
         "fit_share": plain(check.fit_share),
         "calibration_gate": plain(check.gate),
+        "refit_excess_se": {str(k): plain(v) for k, v in check.excess_se.items()},
+        "calibration_shrink": plain(check.shrink),
         "sentence": check.sentence(),
     }
 

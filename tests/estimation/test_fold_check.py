@@ -100,23 +100,48 @@ def test_check_is_saved_in_results_json():
     assert check["sentence"] == result.fold_check.sentence()
 
 
-def test_calibration_refits_widen_by_the_paired_ratio():
+def test_calibration_refits_widen_by_the_shrunk_paired_excess():
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         rw = _fit(unstable=True, bootstrap=20, calibration_refits=0)
         refit = _fit(unstable=True, bootstrap=4, bootstrap_kind="refit")
-        calibrated = _fit(unstable=True, bootstrap=20, calibration_refits=4, calibration_gate=0)
+        calibrated = {
+            s: _fit(
+                unstable=True,
+                bootstrap=20,
+                calibration_refits=4,
+                calibration_gate=0,
+                calibration_shrink=s,
+            )
+            for s in (0.0, 0.5, 50.0)
+        }
     name = rw.estimators[0].name
     # Replicate b of both bootstraps draws the same rows (same generators) [construction], so
-    # the ratio is over the first 4 replicates of each.
-    a = refit.bootstrap.estimates[name].to_numpy()
-    b = rw.bootstrap.estimates[name].to_numpy()[:4]
-    ratio = np.sqrt(np.sum((a - rw.estimate) ** 2) / np.sum((b - rw.estimate) ** 2))
-    check = calibrated.fold_check
-    assert check.corrected and check.refit_ratios[name] == pytest.approx(ratio)
+    # the ratio is over the first 4 replicates of each; the excess ratio^2 - 1 and its
+    # leave-one-pair-out jackknife SE are computed here by hand.
+    e2 = (refit.bootstrap.estimates[name].to_numpy() - rw.estimate) ** 2
+    u2 = (rw.bootstrap.estimates[name].to_numpy()[:4] - rw.estimate) ** 2
+    ratio2 = e2.sum() / u2.sum()
+    loo = np.array([np.delete(e2, i).sum() / np.delete(u2, i).sum() for i in range(4)])
+    jse = np.sqrt(3 / 4 * np.sum((loo - loo.mean()) ** 2))
     se = rw.estimators[0].bootstrap_se
-    assert calibrated.estimators[0].bootstrap_se == pytest.approx(se * max(1.0, ratio))
-    assert ("widened" in _text(calibrated)) == (ratio > 1)
+    for shrink, fit in calibrated.items():
+        check = fit.fold_check
+        assert check.corrected and check.refit_ratios[name] == pytest.approx(np.sqrt(ratio2))
+        assert check.excess_se[name] == pytest.approx(jse) and check.shrink == shrink
+        excess = max(ratio2 - 1, 0.0)
+        if excess > 0 and shrink > 0:
+            excess *= max(0.0, 1 - (shrink * jse / excess) ** 2)
+        assert fit.estimators[0].bootstrap_se == pytest.approx(se * np.sqrt(1 + excess))
+        assert ("widened" in _text(fit)) == (excess > 0)
+    # Unshrunk (the rule before the seventh round): the SE times max(1, ratio).
+    assert calibrated[0.0].estimators[0].bootstrap_se == pytest.approx(
+        se * max(1.0, np.sqrt(ratio2))
+    )
+    # A shrinkage far beyond the excess's noise widens nothing and says why.
+    if ratio2 > 1:
+        assert calibrated[50.0].estimators[0].bootstrap_se == pytest.approx(se)
+        assert "within its noise" in _text(calibrated[50.0])
 
 
 def test_calibration_is_skipped_without_a_reweighting_bootstrap():

@@ -12,6 +12,7 @@ from stackdr.inference import (
     BootstrapResult,
     fold_spread,
     paired_refit_ratio,
+    refit_excess,
     top_row_share,
     widen_intervals,
 )
@@ -118,6 +119,33 @@ def test_paired_refit_ratio_cancels_the_shared_draws():
     assert ratio == pytest.approx(np.sqrt(1.25), rel=0.03)
     assert paired_refit_ratio(np.array([np.nan, 2.0]), np.array([5.0, 1.0]), 0.0) == 2.0
     assert np.isnan(paired_refit_ratio(np.ones(2), np.zeros(2), 0.0))
+
+
+def test_refit_excess_shrinks_an_excess_within_its_noise_and_keeps_a_clear_one():
+    # [construction] Refit = reweighting + an independent refit part of variance v: the excess
+    # ratio^2 - 1 estimates v; with 5 pairs its jackknife SE is large, with 4000 small.
+    rng = np.random.default_rng(7)
+    shared = rng.normal(size=4000)
+    ratio, excess, se = refit_excess(shared + rng.normal(size=4000), shared, 0.0, 1.0)
+    assert ratio**2 - 1 == pytest.approx(1.0, abs=0.1) and se < 0.06
+    # Positive-part shrinkage x (1 - (s / x)^2) leaves a clear excess nearly as it is.
+    assert excess == pytest.approx((ratio**2 - 1) * (1 - (se / (ratio**2 - 1)) ** 2))
+    # No refit noise at all: over many sets of 5 pairs the unshrunk excess, cut at 0, averages
+    # well above 0, and the shrunk one much less.
+    raw, shrunk = [], []
+    for _ in range(400):
+        base = rng.normal(size=5)
+        other = base + 0.0 * rng.normal(size=5)
+        twin = rng.normal(size=5)  # the refit replicate with the same spread, unpaired noise
+        raw.append(refit_excess(twin, base, 0.0, 0.0)[1])
+        shrunk.append(refit_excess(twin, base, 0.0, 1.0)[1])
+        assert refit_excess(other, base, 0.0, 1.0)[1] == 0.0
+    assert np.mean(shrunk) < 0.6 * np.mean(raw)
+    # Degenerate inputs: no reweighting spread gives a NaN ratio and no excess; one pair has
+    # no jackknife SE, so a positive shrinkage adds nothing while shrink = 0 keeps the excess.
+    assert np.isnan(refit_excess(np.ones(3), np.zeros(3), 0.0, 1.0)[0])
+    assert refit_excess(np.array([2.0]), np.array([1.0]), 0.0, 1.0)[1] == 0.0
+    assert refit_excess(np.array([2.0]), np.array([1.0]), 0.0, 0.0)[1] == 3.0
 
 
 def test_weighted_and_clustered_fold_estimates_use_the_fits_own_conventions():
