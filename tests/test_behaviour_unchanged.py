@@ -1,6 +1,7 @@
-"""Full-sample and bootstrap results are bit-identical to numbers recorded before the package
-was reorganised into subpackages (recorded at commit c82f2bd, file
-``tests/data/results_before_restructure.json``; floats stored as ``float.hex``).
+"""Full-sample and bootstrap results match, to 1e-9 relative (bit for bit with the recording
+machine's BLAS kernels), numbers recorded before the package was reorganised into subpackages
+(recorded at commit c82f2bd, file ``tests/data/results_before_restructure.json``; floats stored
+as ``float.hex``).
 
 The numbers were recorded with one native thread; BLAS with several threads changes the
 summation order of the bootstrap's matrix products (last-digit differences). The estimator's
@@ -73,6 +74,45 @@ def _comparable(rows: list) -> list:
     ]
 
 
+# OpenBLAS picks its kernels by CPU (AVX-512 or AVX2), which moves the last digits of the
+# learners' predictions; the weight search's solvers carry that to about 1e-12 relative. A
+# changed code path moves these numbers by far more, so the comparison allows 1e-9 relative
+# (bit for bit on a machine with the recording's kernels, e.g. OPENBLAS_CORETYPE=Haswell).
+RTOL = 1e-9
+
+
+def _as_float(value):
+    if isinstance(value, float):
+        return value
+    if isinstance(value, str):
+        try:
+            return float.fromhex(value)
+        except ValueError:
+            return None
+    return None
+
+
+def _same(got, recorded, where: str = "") -> None:
+    """Recursive comparison: floats (hex-encoded or not) within RTOL of the recorded value
+    (absolutely for values below 1e-3: weights that are zero up to solver tolerance), everything
+    else exactly."""
+    if isinstance(recorded, dict):
+        assert isinstance(got, dict) and set(got) == set(recorded), where
+        for key in recorded:
+            _same(got[key], recorded[key], f"{where}.{key}")
+    elif isinstance(recorded, list):
+        assert isinstance(got, list) and len(got) == len(recorded), where
+        for i, (g, r) in enumerate(zip(got, recorded)):
+            _same(g, r, f"{where}[{i}]")
+    elif _as_float(recorded) is not None and _as_float(got) is not None:
+        g, r = _as_float(got), _as_float(recorded)
+        assert (np.isnan(g) and np.isnan(r)) or abs(g - r) <= RTOL * max(abs(r), 1e-3), (
+            f"{where}: {g!r} != {r!r}"
+        )
+    else:
+        assert got == recorded, where
+
+
 @pytest.mark.parametrize("bootstrap", [0, 100])
 def test_demo_unchanged(bootstrap):
     frame, _ = simulate_demo()
@@ -81,7 +121,7 @@ def test_demo_unchanged(bootstrap):
         result = BlendEstimator("ate", bootstrap=bootstrap, seed=0, **PINNED).fit(
             frame, "programme", "sbp_change"
         )
-    assert _comparable(_rows(result)) == _comparable(RECORDED[f"demo_b{bootstrap}"])
+    _same(_comparable(_rows(result)), _comparable(RECORDED[f"demo_b{bootstrap}"]))
 
 
 @pytest.mark.parametrize("target", ["ate", "att"])
@@ -95,7 +135,7 @@ def test_nsw_unchanged(target):
         result = BlendEstimator(target, folds=3, bootstrap=50, seed=1, **PINNED).fit(
             frame, "treat", "re78", NSW_COVARIATES
         )
-    assert _comparable(_rows(result)) == _comparable(RECORDED[f"nsw_{target}"])
+    _same(_comparable(_rows(result)), _comparable(RECORDED[f"nsw_{target}"]))
 
 
 @pytest.mark.parametrize("library", ["parametric", "default"])
@@ -112,4 +152,4 @@ def test_kang_schafer_replicate_unchanged(library):
         if row["name"] not in ADDED_ROWS
     ]
     got = json.loads(json.dumps(got, sort_keys=True, default=str))
-    assert _comparable(got) == _comparable(RECORDED[f"ks_{library}"])
+    _same(_comparable(got), _comparable(RECORDED[f"ks_{library}"]))
