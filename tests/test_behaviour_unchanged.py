@@ -104,8 +104,7 @@ def _same(got, recorded, where: str = "") -> None:
         assert isinstance(got, list) and len(got) == len(recorded), where
         for i, (g, r) in enumerate(zip(got, recorded)):
             _same(g, r, f"{where}[{i}]")
-    elif _as_float(recorded) is not None and _as_float(got) is not None:
-        g, r = _as_float(got), _as_float(recorded)
+    elif (r := _as_float(recorded)) is not None and (g := _as_float(got)) is not None:
         assert (np.isnan(g) and np.isnan(r)) or abs(g - r) <= RTOL * max(abs(r), 1e-3), (
             f"{where}: {g!r} != {r!r}"
         )

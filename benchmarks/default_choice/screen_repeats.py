@@ -7,7 +7,8 @@ as in ``study_default_grid.py``), the default fit with repeats = 1 and with repe
 same data set and estimator seed, bootstrap 0; of each, the headline, the searched weights
 before the contrast test and PLS. Squared errors are paired within the replicate. Rows:
 ``results/screen_repeats_{design}_{n}_{libraries}_{seed}.csv``; ``--table`` writes the paired
-table of every such file to ``results/default_choice_repeats.md``.
+table of every such file to ``results/default_choice_repeats_table.md`` (the reading is in
+``results/default_choice_repeats.md``).
 
 Usage: python benchmarks/default_choice/screen_repeats.py DESIGN N LIBRARIES SEED REPS [R]
        python benchmarks/default_choice/screen_repeats.py --table
@@ -77,15 +78,19 @@ COMPARISONS = [
 ]
 
 
+def comparisons(df: pd.DataFrame, R: int):
+    """(label, RMSE ratio, paired difference) of every comparison, R filled in."""
+    for a, b, label in COMPARISONS:
+        yield (label, *paired(df, a.replace("rR", f"r{R}"), b.replace("rR", f"r{R}")))
+
+
 def table() -> pd.DataFrame:
     rows = []
     for path in sorted(OUT.glob("screen_repeats_*.csv")):
         design, n, libraries, seed = path.stem.removeprefix("screen_repeats_").rsplit("_", 3)
         df = pd.read_csv(path)
         R = max(int(c.split("_r")[1]) for c in df.columns if c.startswith("main_r"))
-        for a, b, label in COMPARISONS:
-            a, b = a.replace("rR", f"r{R}"), b.replace("rR", f"r{R}")
-            ratio, diff = paired(df, a, b)
+        for label, ratio, diff in comparisons(df, R):
             rows.append(
                 {
                     "libraries": libraries,
@@ -118,7 +123,5 @@ if __name__ == "__main__":
     )
     df = pd.DataFrame(rows)
     df.to_csv(path, index=False)
-    for a, b, label in COMPARISONS:
-        a, b = a.replace("rR", f"r{repeats}"), b.replace("rR", f"r{repeats}")
-        ratio, diff = paired(df, a, b)
+    for label, ratio, diff in comparisons(df, repeats):
         print(f"{label}: RMSE ratio {ratio:.3f}, paired diff {diff}")
