@@ -9,6 +9,9 @@ d = e - p. With the variance guard (searched SE <= k x PLS's SE) every rule keep
 - ``test z``: e when |d| > z s, else p (the default is z = 1.5, k = 1.05);
 - ``positive part z``: p + max(0, 1 - (z s / d)^2) d (James-Stein-type shrinkage towards PLS);
 - ``soft z``: p + sign(d) max(0, |d| - z s);
+- ``variance cost a``: the default test, but a data set kept by the test alone (not by the
+  guard) keeps e only when d^2 > s^2 + a (SE_e^2 - SE_p^2): the estimated squared bias removed
+  (d^2 less its noise s^2) must exceed the variance the searched weights add;
 - ``none``: e always (the search's own ceiling).
 
 Rows: ``results/default_choice_variance_guard_seed{2007,2027}.csv`` (written by
@@ -34,6 +37,8 @@ RULES = [
     ("positive part", 1.0, 1.05),
     ("positive part", 0.75, 1.05),
     ("soft", 0.5, 1.05),
+    ("variance cost", 1.0, 1.05),
+    ("variance cost", 2.0, 1.05),
     ("none", None, None),
 ]
 
@@ -47,6 +52,9 @@ def estimate(g: pd.DataFrame, kind: str, z: float | None, k: float | None) -> np
     guard = g[f"se_{KEY}"].to_numpy() <= k * g.se_pls.to_numpy()
     if kind == "test":
         moved = np.where(np.abs(d) > z * s, d, 0.0)
+    elif kind == "variance cost":
+        cost = g[f"se_{KEY}"].to_numpy() ** 2 - g.se_pls.to_numpy() ** 2
+        moved = np.where((np.abs(d) > 1.5 * s) & (d**2 > s**2 + z * cost), d, 0.0)
     elif kind == "positive part":
         with np.errstate(divide="ignore", invalid="ignore"):
             moved = np.where(d != 0, np.maximum(0.0, 1.0 - (z * s) ** 2 / d**2) * d, 0.0)
@@ -64,7 +72,8 @@ def table(frame: pd.DataFrame) -> pd.DataFrame:
             se = diff.std(ddof=1) / np.sqrt(len(g))
             t = diff.mean() / se if se > 0 else 0.0
             mark = "*" if t > 2 else ("-" if t < -2 else "")
-            name = kind + (f" z = {z:g}, guard {k:g}" if z is not None else "")
+            label = "a" if kind == "variance cost" else "z"
+            name = kind + (f" {label} = {z:g}, guard {k:g}" if z is not None else "")
             ratio = np.sqrt(((estimate(g, kind, z, k) - g.truth) ** 2).mean() / e0.mean())
             out.setdefault(name, {})[f"{cell} (R={len(g)})"] = f"{ratio:.3f}; {t:+.1f}{mark}"
     return pd.DataFrame(out).T
