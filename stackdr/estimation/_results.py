@@ -67,7 +67,10 @@ DEFAULT_WEIGHTING = (
     "stacking's. Where every learner is good, or all share one bias, the headline is then "
     "usually prediction-loss stacking's or close to it; the gain over it is largest with flexible "
     "libraries and large samples, where the target-aimed weights remove a bias the data can "
-    "detect."
+    "detect (Kang-Schafer ATE with the default libraries: RMSE about 0.8 x stacking's at "
+    "n = 1000, 0.95 x at n = 200). Where every learner was good it was never significantly "
+    "worse, but up to 3% worse in RMSE within Monte Carlo error; the table's stacking row is "
+    "there to compare."
 )
 
 #: The settings whose defaults make up the weighting that sentence describes; the note appears
