@@ -162,3 +162,41 @@ def test_blend_estimate_equals_pair_table_vertex(rng):
             assert r.estimate == pytest.approx(Psi[k, j], rel=1e-12)
             assert r.se == pytest.approx(ses[k, j], rel=1e-10)
     assert isinstance(pd.DataFrame(Psi), pd.DataFrame)
+
+
+def test_nhefs_quitting_smoking_effect_inside_published_interval():
+    # Hernan & Robins, Causal Inference: What If (2020), chapter 12: on the 1566 NHEFS smokers
+    # with both weights measured (shipped by the PyPI package causaldata as nhefs_complete), the
+    # IP weighted average effect of quitting smoking on 1971-82 weight gain is 3.4 kg (95% CI
+    # 2.4 to 4.5); chapter 13, standardisation, 3.5 kg (values recalled from memory). The first
+    # part recomputes their IP weighting from the book's propensity model (statsmodels GLM), so a
+    # misremembered reference fails here; the second checks the default estimator with its
+    # default libraries (cross-fitted, no bootstrap) lands inside the published interval and
+    # within one of its own SEs of the IP weighted value.
+    import statsmodels.formula.api as smf
+    from causaldata import nhefs_complete
+
+    from stackdr import BlendEstimator
+
+    df = nhefs_complete.load_pandas().data
+    assert len(df) == 1566
+    ps_model = smf.glm(
+        "qsmk ~ sex + race + age + I(age**2) + C(education) + smokeintensity"
+        " + I(smokeintensity**2) + smokeyrs + I(smokeyrs**2) + C(exercise) + C(active) + wt71"
+        " + I(wt71**2)",
+        data=df,
+        family=sm.families.Binomial(),
+    ).fit()
+    p = ps_model.predict(df)
+    a, y = df["qsmk"].to_numpy(), df["wt82_71"].to_numpy()
+    w = np.where(a == 1, 1 / p, 1 / (1 - p))
+    ipw = np.average(y[a == 1], weights=w[a == 1]) - np.average(y[a == 0], weights=w[a == 0])
+    assert ipw == pytest.approx(3.4, abs=0.05)
+
+    covariates = ["sex", "race", "age", "education", "smokeintensity", "smokeyrs"]
+    covariates += ["exercise", "active", "wt71"]
+    result = BlendEstimator("ate", seed=11, bootstrap=0).fit(df, "qsmk", "wt82_71", covariates)
+    est, se = result.estimators[0].estimate, result.estimators[0].se
+    assert 2.4 < est < 4.5
+    assert abs(est - ipw) < se
+    assert 0.3 < se < 0.8  # the book's IP weighting CI half-width is about 1.05 = 1.96 x 0.54
