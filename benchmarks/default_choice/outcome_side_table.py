@@ -38,21 +38,24 @@ def estimate(g, key, z):
     return np.where(keep, e, g.est_pls)
 
 
+def paired_cell(e1, e0) -> str:
+    """ "ratio; t": RMSE ratio of squared errors e1 to e0 and their paired difference in MC SEs
+    (``*`` beyond +2, ``-`` below -2)."""
+    diff = e1 - e0
+    se = diff.std(ddof=1) / np.sqrt(len(diff))
+    t = diff.mean() / se if se > 0 else 0.0
+    mark = "*" if t > 2 else ("-" if t < -2 else "")
+    return f"{np.sqrt(e1.mean() / e0.mean()):.3f}; {t:+.1f}{mark}"
+
+
 def table(frame: pd.DataFrame) -> pd.DataFrame:
     out = {}
     for cell, g in frame.groupby("cell", sort=False):
         e0 = (g.est_pls - g.truth) ** 2
         label = f"{cell} (R={len(g)})"
         for key, z in RULES:
-            e1 = (estimate(g, key, z) - g.truth) ** 2
-            diff = e1 - e0
-            se = diff.std(ddof=1) / np.sqrt(len(g))
-            t = diff.mean() / se if se > 0 else 0.0
-            mark = "*" if t > 2 else ("-" if t < -2 else "")
             name = key if z is None else f"{key}, z = {z:g}"
-            out.setdefault(name, {})[label] = (
-                f"{np.sqrt(e1.mean() / e0.mean()):.3f}; {t:+.1f}{mark}"
-            )
+            out.setdefault(name, {})[label] = paired_cell((estimate(g, key, z) - g.truth) ** 2, e0)
     return pd.DataFrame(out).T
 
 

@@ -39,19 +39,14 @@ from stackdr.estimation._learners import (
 from stackdr.search import MAIN, PLS, UNTESTED
 from stackdr.studies import get_design, replicate_seeds
 
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from outcome_side_table import paired_cell  # noqa: E402
+from study_default_grid import CELLS as GRID_CELLS  # noqa: E402
+
 OUT = Path(__file__).resolve().parents[1] / "results"
 ROWS = {"main": MAIN, "untested": UNTESTED, "pls": PLS}
-CELLS = [
-    ("kang-schafer-ate-transformed", 200, 200),
-    ("kang-schafer-ate-transformed", 1000, 100),
-    ("poor-overlap", 1000, 100),
-    ("smooth-consistent", 500, 200),
-    ("nsw-semi-synthetic", 1000, 100),
-    ("lunceford-davidian", 1000, 100),
-    ("kang-schafer-transformed", 200, 200),
-    ("kang-schafer-transformed", 1000, 100),
-    ("sparse", 1000, 100),
-]
+# The grid's default-library cells (design, n, replicates).
+CELLS = next(cells for label, _, _, cells in GRID_CELLS if label == "default")
 
 
 def without_last_outcome(cf):
@@ -103,14 +98,7 @@ def table(df: pd.DataFrame) -> str:
     lines.append("|---" * (len(comps) + 2) + "|")
     for (design, n), g in df.groupby(["design", "n"], sort=False):
         t = g.truth
-        cells = []
-        for a, b, _ in comps:
-            ea, eb = (g[a] - t) ** 2, (g[b] - t) ** 2
-            d = ea - eb
-            se = d.std(ddof=1) / np.sqrt(len(d))
-            z = d.mean() / se if se > 0 else 0.0
-            mark = "*" if z > 2 else ("-" if z < -2 else "")
-            cells.append(f"{np.sqrt(ea.mean() / eb.mean()):.3f}; {z:+.1f}{mark}")
+        cells = [paired_cell((g[a] - t) ** 2, (g[b] - t) ** 2) for a, b, _ in comps]
         lines.append(f"| {design} n = {n} | {len(g)} | " + " | ".join(cells) + " |")
     return "\n".join(lines)
 

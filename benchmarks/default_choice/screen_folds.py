@@ -27,35 +27,11 @@ import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
 
-from stackdr import BlendEstimator
-from stackdr.search import MAIN, PLS, UNTESTED
-from stackdr.studies import build_libraries, get_design, replicate_seeds
-
-OUT = Path(__file__).resolve().parents[1] / "results"
-ROWS = {"main": MAIN, "untested": UNTESTED, "pls": PLS}
+from screen_repeats import OUT, ROWS, fit_rows
 
 
 def one(design: str, n: int, libraries: str, rep: int, seed: int, counts: list[int]) -> dict:
-    seeds = replicate_seeds(seed, design, n, rep)
-    data = get_design(design).simulate(n, np.random.default_rng(seeds.data))
-    out = {"rep": rep, "truth": data.truth}
-    for k in counts:
-        plib, olib = build_libraries(libraries)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            res = BlendEstimator(
-                data.target,
-                plib,
-                olib,
-                seed=int(seeds.estimator),
-                bootstrap=0,
-                n_jobs=1,
-                folds=k,
-            ).fit(data.frame, data.treatment, data.outcome, data.covariates)
-        by = {e.name: e.estimate for e in res.estimators}
-        for key, name in ROWS.items():
-            out[f"{key}_k{k}"] = by[name]
-    return out
+    return fit_rows(design, n, libraries, rep, seed, {f"k{k}": {"folds": k} for k in counts})
 
 
 def table(df: pd.DataFrame, counts: list[int]) -> str:

@@ -35,11 +35,14 @@ OUT = Path(__file__).resolve().parents[1] / "results"
 ROWS = {"main": MAIN, "untested": UNTESTED, "pls": PLS}
 
 
-def one(design: str, n: int, libraries: str, rep: int, seed: int, repeats: int) -> dict:
+def fit_rows(design: str, n: int, libraries: str, rep: int, seed: int, variants: dict) -> dict:
+    """One replicate: the default fit once per variant (suffix -> extra estimator settings) on
+    the same data set and estimator seed, bootstrap 0; columns ``{row}_{suffix}`` for the
+    headline, the searched weights before the test and PLS."""
     seeds = replicate_seeds(seed, design, n, rep)
     data = get_design(design).simulate(n, np.random.default_rng(seeds.data))
     out = {"rep": rep, "truth": data.truth}
-    for r in (1, repeats):
+    for suffix, settings in variants.items():
         plib, olib = build_libraries(libraries)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
@@ -50,12 +53,18 @@ def one(design: str, n: int, libraries: str, rep: int, seed: int, repeats: int) 
                 seed=int(seeds.estimator),
                 bootstrap=0,
                 n_jobs=1,
-                repeats=r,
+                **settings,
             ).fit(data.frame, data.treatment, data.outcome, data.covariates)
         by = {e.name: e.estimate for e in res.estimators}
         for key, name in ROWS.items():
-            out[f"{key}_r{r}"] = by[name]
+            out[f"{key}_{suffix}"] = by[name]
     return out
+
+
+def one(design: str, n: int, libraries: str, rep: int, seed: int, repeats: int) -> dict:
+    return fit_rows(
+        design, n, libraries, rep, seed, {f"r{r}": {"repeats": r} for r in (1, repeats)}
+    )
 
 
 def paired(df: pd.DataFrame, a: str, b: str) -> tuple[float, str]:

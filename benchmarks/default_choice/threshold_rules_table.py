@@ -25,7 +25,7 @@ import sys
 
 import numpy as np
 import pandas as pd
-from outcome_side_table import print_tables
+from outcome_side_table import paired_cell, print_tables
 
 KEY = "pa0.25"
 RULES = [
@@ -68,14 +68,10 @@ def table(frame: pd.DataFrame) -> pd.DataFrame:
     for cell, g in frame.groupby("cell", sort=False):
         e0 = (g.est_pls - g.truth) ** 2
         for kind, z, k in RULES:
-            diff = (estimate(g, kind, z, k) - g.truth) ** 2 - e0
-            se = diff.std(ddof=1) / np.sqrt(len(g))
-            t = diff.mean() / se if se > 0 else 0.0
-            mark = "*" if t > 2 else ("-" if t < -2 else "")
             label = "a" if kind == "variance cost" else "z"
             name = kind + (f" {label} = {z:g}, guard {k:g}" if z is not None else "")
-            ratio = np.sqrt(((estimate(g, kind, z, k) - g.truth) ** 2).mean() / e0.mean())
-            out.setdefault(name, {})[f"{cell} (R={len(g)})"] = f"{ratio:.3f}; {t:+.1f}{mark}"
+            e1 = (estimate(g, kind, z, k) - g.truth) ** 2
+            out.setdefault(name, {})[f"{cell} (R={len(g)})"] = paired_cell(e1, e0)
     return pd.DataFrame(out).T
 
 

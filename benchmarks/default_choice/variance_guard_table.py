@@ -11,7 +11,7 @@ import sys
 
 import numpy as np
 import pandas as pd
-from outcome_side_table import print_tables
+from outcome_side_table import paired_cell, print_tables
 
 RULES = [
     ("pa0.25", "test", 1.5, None),
@@ -44,14 +44,9 @@ def table(frame):
         label = f"{cell} (R={len(g)})"
         for key, kind, z, k in RULES:
             est, kept = estimate(g, key, kind, z, k)
-            e1 = (est - g.truth) ** 2
-            diff = e1 - e0
-            se = diff.std(ddof=1) / np.sqrt(len(g))
-            t = diff.mean() / se if se > 0 else 0.0
-            mark = "*" if t > 2 else ("-" if t < -2 else "")
             name = f"{key} {kind}" + (f" z={z:g}" if z else "") + (f" k={k:g}" if k else "")
             out.setdefault(name, {})[label] = (
-                f"{np.sqrt(e1.mean() / e0.mean()):.3f}; {t:+.1f}{mark}; kept {kept:.2f}"
+                f"{paired_cell((est - g.truth) ** 2, e0)}; kept {kept:.2f}"
             )
     return pd.DataFrame(out).T
 
