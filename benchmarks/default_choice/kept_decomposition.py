@@ -23,7 +23,7 @@ from stackdr.studies import read_results
 GUARD = 1.05
 
 
-def decompose(path: Path) -> list[str]:
+def decompose(path: Path) -> str:
     df = read_results(path)
     wide = df.pivot_table(index="rep", columns="estimator", values=["estimate", "se"])
     truth = df.groupby("rep").truth.first()
@@ -40,7 +40,7 @@ def decompose(path: Path) -> list[str]:
             f" {mask.mean():.2f}; {diff[mask].sum() / len(diff):+.3g}; "
             f"{ratio[mask].mean() if mask.any() else float('nan'):.2f} |"
         )
-    return [head + "".join(parts)]
+    return head + "".join(parts)
 
 
 if __name__ == "__main__":
@@ -58,4 +58,4 @@ if __name__ == "__main__":
     )
     print("|---|---|---|---|---|")
     for path in sorted(folder.glob("grid_default_*.sqlite")):
-        print("\n".join(decompose(path)))
+        print(decompose(path))
