@@ -50,7 +50,7 @@ def build_libraries(library: str | Mapping) -> tuple[dict | None, dict | None]:
         logistic and constant propensity learners; linear, quadratic ridge and constant outcome
         learners), or a mapping ``{"propensity": {name: spec}, "outcome": {name: spec}}`` where
         each spec is ``{"learner": catalogue name, **parameters}`` (see
-        :data:`stackdr.learners.CATALOGUE`). A side left out keeps the default library.
+        :data:`stackdr.estimation.CATALOGUE`). A side left out keeps the default library.
 
     Returns
     -------
