@@ -23,7 +23,7 @@ import numpy as np
 import pytest
 
 from stackdr import BlendEstimator
-from stackdr.studies import build_libraries, get_design, simulate_demo, simulate_replicate
+from stackdr.studies import get_design, simulate_demo, simulate_replicate
 
 RECORDED = json.loads(
     (Path(__file__).parent / "data" / "results_before_restructure.json").read_text()
@@ -36,21 +36,10 @@ PINNED = {
     "calibration_refits": 0,
     "outcome_side": "search",
 }
-# The outcome library before the intercept-only learner joined the default (ninth round).
-FOUR_OUTCOME_LEARNERS = {
-    "linear": {"learner": "linear"},
-    "spline-ridge": {"learner": "spline-ridge"},
-    "boosting": {"learner": "boosting-regressor"},
-    "forest": {"learner": "forest-regressor"},
-}
 ADDED_ROWS = {"smoothed pair average"}
 NSW_COVARIATES = ["age", "educ", "black", "hisp", "marr", "nodegree", "re74", "re75"]
 
 pytestmark = pytest.mark.slow
-
-
-def _four() -> dict:
-    return build_libraries({"outcome": FOUR_OUTCOME_LEARNERS})[1]
 
 
 def _rows(result) -> list[dict]:
@@ -128,9 +117,9 @@ def test_demo_unchanged(bootstrap):
     frame, _ = simulate_demo()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        result = BlendEstimator(
-            "ate", bootstrap=bootstrap, seed=0, outcome_learners=_four(), **PINNED
-        ).fit(frame, "programme", "sbp_change")
+        result = BlendEstimator("ate", bootstrap=bootstrap, seed=0, **PINNED).fit(
+            frame, "programme", "sbp_change"
+        )
     _same(_comparable(_rows(result)), _comparable(RECORDED[f"demo_b{bootstrap}"]))
 
 
@@ -142,17 +131,16 @@ def test_nsw_unchanged(target):
     frame = nsw_mixtape.load_pandas().data[["treat", "re78", *NSW_COVARIATES]].astype(float)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        result = BlendEstimator(
-            target, folds=3, bootstrap=50, seed=1, outcome_learners=_four(), **PINNED
-        ).fit(frame, "treat", "re78", NSW_COVARIATES)
+        result = BlendEstimator(target, folds=3, bootstrap=50, seed=1, **PINNED).fit(
+            frame, "treat", "re78", NSW_COVARIATES
+        )
     _same(_comparable(_rows(result)), _comparable(RECORDED[f"nsw_{target}"]))
 
 
 @pytest.mark.parametrize("library", ["parametric", "default"])
 def test_kang_schafer_replicate_unchanged(library):
     data = get_design("kang-schafer-ate-transformed").simulate(1000, np.random.default_rng(11))
-    spec = {"outcome": FOUR_OUTCOME_LEARNERS} if library == "default" else library
-    rows = simulate_replicate(data, 5, library=spec, settings={"bootstrap": 50, **PINNED})
+    rows = simulate_replicate(data, 5, library=library, settings={"bootstrap": 50, **PINNED})
     got = [
         {
             k: (float(v).hex() if isinstance(v, float) else v)

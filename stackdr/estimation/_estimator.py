@@ -39,7 +39,6 @@ from stackdr.estimation._learners import (
     check_library,
     default_outcome_library,
     default_propensity_library,
-    default_regression_library,
 )
 from stackdr.estimation._parallel import (
     check_cluster,
@@ -113,9 +112,8 @@ class BlendEstimator(BaseEstimator):
         "ate", "att", "mean1", "mean0", "cov", or a user-defined :class:`~stackdr.targets.Target`.
     propensity_learners, outcome_learners : dict name -> estimator, optional
         Learner libraries (default: :func:`~stackdr.estimation.default_propensity_library` and
-        :func:`~stackdr.estimation.default_outcome_library`; a continuous treatment's default
-        library is :func:`~stackdr.estimation.default_regression_library`). Cloned, never
-        mutated.
+        :func:`~stackdr.estimation.default_outcome_library`, which is also a continuous
+        treatment's default). Cloned, never mutated.
     folds : int or array
         Cross-fitting folds (default 5); 1 fits in sample (parametric learners and reference
         checks only); or fold labels per row (e.g. clusters kept whole).
@@ -397,7 +395,7 @@ class BlendEstimator(BaseEstimator):
         if self.propensity_learners is not None:
             plib = self.propensity_learners
         else:
-            plib = default_propensity_library() if binary else default_regression_library()
+            plib = default_propensity_library() if binary else default_outcome_library()
         olib = (
             self.outcome_learners
             if self.outcome_learners is not None

@@ -366,30 +366,14 @@ def default_propensity_library() -> dict[str, BaseEstimator]:
     }
 
 
-def default_regression_library() -> dict[str, BaseEstimator]:
-    """Four fast regression learners of different kinds.
-
-    The default library for a continuous treatment's regression E[A | X], and the outcome
-    library before the intercept-only learner joined it (``default_outcome_library``).
-    """
+def default_outcome_library() -> dict[str, BaseEstimator]:
+    """Four fast outcome learners of different kinds."""
     return {
         "linear": make_learner("linear"),
         "spline-ridge": make_learner("spline-ridge"),
         "boosting": make_learner("boosting-regressor"),
         "forest": make_learner("forest-regressor"),
     }
-
-
-def default_outcome_library() -> dict[str, BaseEstimator]:
-    """The four regression learners plus the intercept-only learner ("constant").
-
-    The constant learner's pair estimate with a propensity learner is that learner's
-    inverse-weighting estimate, so in the perturbation criterion it asks the weights to balance
-    the fitted outcome regressions; without it, when every outcome learner shares one bias, the
-    criterion cannot tell a biased propensity learner from a good one (issue 10, ninth round;
-    evidence in DEVELOPERS.md). Least-squares stacking gives it about zero weight.
-    """
-    return {**default_regression_library(), "constant": make_learner("constant-regressor")}
 
 
 def parametric_propensity_library() -> dict[str, BaseEstimator]:

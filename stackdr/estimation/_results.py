@@ -68,9 +68,7 @@ DEFAULT_WEIGHTING = (
     "usually prediction-loss stacking's or close to it; the gain over it is largest with flexible "
     "libraries and large samples, where the target-aimed weights remove a bias the data can "
     "detect (Kang-Schafer ATE with the default libraries: RMSE about 0.8 x stacking's at "
-    "n = 1000, 0.92-0.95 x at n = 200; the default outcome library's intercept-only learner "
-    "lets the search see each propensity learner's inverse-weighting estimate). Where every "
-    "learner was good it was never significantly "
+    "n = 1000, 0.95 x at n = 200). Where every learner was good it was never significantly "
     "worse, but up to 3% worse in RMSE within Monte Carlo error; the table's stacking row is "
     "there to compare."
 )

@@ -22,7 +22,6 @@ from stackdr.estimation import (
     accepts_sample_weight,
     default_outcome_library,
     default_propensity_library,
-    default_regression_library,
     sample_weight_arguments,
 )
 from stackdr.search import STACKED_PROPENSITY
@@ -362,7 +361,7 @@ def blended_models(
     binary = cf.propensity_kind == "classifier"
     plib = _library(
         propensity_learners,
-        default_propensity_library if binary else default_regression_library,
+        default_propensity_library if binary else default_outcome_library,
         cf.propensity_names,
         "propensity",
     )
