@@ -20,6 +20,7 @@ import pandas as pd
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 from outcome_side_table import paired_cell  # noqa: E402
+from screen_repeats import paired  # noqa: E402
 
 RESULTS = Path(__file__).resolve().parents[1] / "results"
 GRIDS = {
@@ -33,19 +34,9 @@ def grid_cell(row) -> str:
     return f"{row['sq. error diff (MC SE)']}, {row['ratio']:.3f} [{row['pairs']}]"
 
 
-def screen_cell(g: pd.DataFrame, a: str, b: str, with_diff: bool) -> str:
-    e1, e0 = (g[a] - g.truth) ** 2, (g[b] - g.truth) ** 2
-    if not with_diff:
-        return paired_cell(e1, e0)
-    d = e1 - e0
-    se = d.std(ddof=1) / len(d) ** 0.5
-    star = "*" if abs(d.mean()) > 2 * se else ""
-    return f"{d.mean():+.3g} ({se:.2g}){star}, {(e1.mean() / e0.mean()) ** 0.5:.3f} [{len(d)}]"
-
-
 def main() -> str:
     grids = {s: pd.read_csv(p) for s, p in GRIDS.items()}
-    screens = {s: pd.read_csv(p) for s, p in SCREENS.items() if p.exists()}
+    screens = {s: pd.read_csv(p) for s, p in SCREENS.items()}
     head = [
         "cell",
         "seed 2127 (fresh): candidate - PLS, ratio [pairs]",
@@ -54,24 +45,24 @@ def main() -> str:
     ]
     lines = ["| " + " | ".join(head) + " |", "|---" * len(head) + "|"]
     for _, row in grids[2127].iterrows():
-        key = (row.design, row.n)
         label = f"{row.library}, {row.design}, n = {row.n}"
         cells = [grid_cell(row)]
-        sub = {s: f[(f.design == key[0]) & (f.n == key[1])] for s, f in screens.items()}
-        if row.library == "parametric" or 2087 not in sub:
-            old = grids[2087]
-            match = old[(old.library == row.library) & (old.design == key[0]) & (old.n == key[1])]
-            cells.append(grid_cell(match.iloc[0]))
-        else:
-            cells.append(screen_cell(sub[2087], "main_c", "pls_c", with_diff=True))
         if row.library == "parametric":
-            cells.append("library already holds it")
-        else:
-            parts = [
-                screen_cell(sub[s], "main_c", "main_0", with_diff=False) if s in sub else "-"
-                for s in (2127, 2087, 2007, 2027)
+            old = grids[2087]
+            match = old[
+                (old.library == row.library) & (old.design == row.design) & (old.n == row.n)
             ]
-            cells.append(" / ".join(parts))
+            cells += [grid_cell(match.iloc[0]), "library already holds it"]
+        else:
+            sub = {s: f[(f.design == row.design) & (f.n == row.n)] for s, f in screens.items()}
+            ratio, diff = paired(sub[2087], "main_c", "pls_c")
+            cells.append(f"{diff}, {ratio:.3f} [{len(sub[2087])}]")
+            cells.append(
+                " / ".join(
+                    paired_cell((g.main_c - g.truth) ** 2, (g.main_0 - g.truth) ** 2)
+                    for g in sub.values()
+                )
+            )
         lines.append(f"| {label} | " + " | ".join(cells) + " |")
     return "\n".join(lines)
 
