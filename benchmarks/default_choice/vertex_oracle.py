@@ -25,7 +25,8 @@ from stackdr.search import MAIN, PLS, UNTESTED
 from stackdr.studies import build_libraries, get_design, replicate_seeds
 
 
-def one(design, n, lib, rep, seed):
+def default_fit(design, n, lib, rep, seed):
+    """The grid replicate's data and its default fit (bootstrap 0)."""
     seeds = replicate_seeds(seed, design, n, rep)
     data = get_design(design).simulate(n, np.random.default_rng(seeds.data))
     plib, olib = build_libraries(lib)
@@ -34,6 +35,11 @@ def one(design, n, lib, rep, seed):
         res = BlendEstimator(
             data.target, plib, olib, seed=int(seeds.estimator), bootstrap=0, n_jobs=1
         ).fit(data.frame, data.treatment, data.outcome, data.covariates)
+    return data, res
+
+
+def one(design, n, lib, rep, seed):
+    data, res = default_fit(design, n, lib, rep, seed)
     an = res.analysis
     by = {e.name: e.estimate for e in res.estimators}
     return dict(

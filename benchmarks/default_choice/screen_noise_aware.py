@@ -1,0 +1,266 @@
+"""Screen: noise-aware propensity selection for small samples (issue 10, tenth round).
+
+Why: at n = 200 the range of the pair estimates across the outcome learners is within the noise
+(``results/default_choice_small_n_mechanism.md``): a propensity learner whose pair estimates are
+stable but biased wins, and the forest vertex, 0.80 x PLS alone, is ranked first in 22% of data
+sets. Three ways to let the noise into the selection, each a published idea:
+
+- ``debiased``: the squared gap g_jj'(alpha)^2 between two outcome learners has expectation
+  (population gap)^2 + Var(g_jj'); the paired influence-function variance v_jj'(alpha) is a
+  quadratic form in alpha, so max_jj' (g^2 - v) estimates the largest squared population gap
+  (unbiased-risk-estimate style). Then the package's tie-break and contrast test.
+- ``soft...``: exponential weights over the propensity vertices (the library's learners and the
+  stacked column), exp(-(R_k - min R) / scale) with R_k the squared range at vertex k
+  (model averaging, as the smoothed pair-average row); scale as the package row (``soft``), the
+  median squared pair SE (``soft-se``), or a multiple of it (``soft:f``; ``soft:1000`` is about
+  the equal-weight average). Then the contrast test and guard against PLS.
+- ``bag``: bootstrap smoothing (Efron 2014, J. Amer. Statist. Assoc. 109:991-1007): the
+  tie-broken range search averaged over M = 100 Gaussian draws of the pair table from its IF
+  covariance (tolerance held at the full-sample value), then the test; ``bagtest`` runs the
+  test and guard inside each draw and averages the outcomes (no outer test);
+  ``bag-noguard`` and ``bag-noguard-z2`` drop the variance guard of the outer test (z = 1.5, 2).
+
+Per replicate of a grid cell (seeds ``replicate_seeds(seed, design, n, rep)`` as in
+``study_default_grid.py``; the default fit, bootstrap 0) ``run`` stores the pair table over the
+search's propensity columns (the library's learners, then the stacked column), the
+least-squares outcome weights, the IF covariance of all pair estimates and the package's
+headline, untested and PLS estimates (a pickle, not kept). ``csv`` applies the rules offline on
+a simplex lattice (the vertices plus resolution 10) with the package's settings emulated
+(tie-break tolerance c = 0.25 x SE of the gap attaining the range at the optimum, the lattice
+point nearest the stacked column; contrast test z = 1.5 with variance guard 1.05 at the
+least-squares outcome weights). ``range`` is the current rule under that emulation; the table
+compares each rule with it and with PLS on the same fits (the package's own rows are shown too:
+the emulation is close, not exact). ``table`` prints the paired Markdown table of
+``results/default_choice_noise_aware.md``.
+
+Usage: python benchmarks/default_choice/screen_noise_aware.py run SEED LIB DESIGN N REPS PKL
+       python benchmarks/default_choice/screen_noise_aware.py csv CSV PKL...
+       python benchmarks/default_choice/screen_noise_aware.py table CSV
+"""
+
+import itertools
+import pickle
+import sys
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+from joblib import Parallel, delayed
+
+from stackdr.core._pairtable import pair_rows
+from stackdr.search import MAIN, PLS, UNTESTED
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from vertex_oracle import default_fit  # noqa: E402
+
+
+def one(design, n, lib, rep, seed):
+    data, res = default_fit(design, n, lib, rep, seed)
+    an = res.analysis
+    inp = an.inputs[0]
+    K1, K2 = an.Psi.shape
+    dbar = inp.d.mean()
+    infl = []
+    for k in range(K1):
+        H = pair_rows(inp, k)
+        psi = H.sum(axis=0) / inp.d.sum()
+        infl.append((H - inp.d[:, None] * psi[None, :]) / dbar)
+    F = np.stack(infl, axis=1)  # n, K1, K2
+    m = F.shape[0]
+    G = F.reshape(m, K1 * K2)
+    cov = G.T @ G / m**2
+    by = {e.name: e.estimate for e in res.estimators}
+    return dict(
+        truth=data.truth,
+        Psi=an.Psi.copy(),
+        beta=np.asarray(an.stack_beta, float),
+        cov=cov,
+        names=list(an.propensity_names),
+        main=by[MAIN],
+        pls=by[PLS],
+        untested=by[UNTESTED],
+    )
+
+
+def lattice(K: int, res: int) -> np.ndarray:
+    """Points of the simplex in K dimensions with coordinates in multiples of 1 / res."""
+    pts = [c for c in itertools.product(range(res + 1), repeat=K - 1) if sum(c) <= res]
+    A = np.array([[*c, res - sum(c)] for c in pts], float) / res
+    return A
+
+
+def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
+    """One rule on lattice A for one stored replicate: (untested, headline) estimates."""
+    Psi, beta, cov = o["Psi"], o["beta"], o["cov"]
+    K1, K2 = Psi.shape
+    C = cov.reshape(K1, K2, K1, K2)
+    vals = A @ Psi  # m, K2
+    pairs = list(itertools.combinations(range(K2), 2))
+    gaps = np.stack([vals[:, j] - vals[:, l] for j, l in pairs], 1)  # m, P
+    var = np.stack(
+        [
+            np.einsum(
+                "mk,kl,ml->m",
+                A,
+                C[:, j, :, j] + C[:, l, :, l] - C[:, j, :, l] - C[:, l, :, j],
+                A,
+            )
+            for j, l in pairs
+        ],
+        1,
+    )
+    if rule == "debiased":
+        crit = np.sqrt(np.maximum((gaps**2 - var).max(1), 0.0))
+    else:
+        crit = np.abs(gaps).max(1)
+    anchor = np.eye(K1)[-1]
+    if rule.startswith("soft"):
+        # pair-average style weights over the vertices (the first K1 lattice rows)
+        r2 = crit[:K1] ** 2
+        pse = np.sqrt(np.einsum("kjkj->kj", C))
+        if rule == "soft":
+            scale = max(r2.min(), 0.01 * np.median(pse**2))
+        elif rule == "soft-se":
+            scale = np.median(pse**2)
+        else:
+            scale = float(rule.split(":")[1]) * np.median(pse**2)
+        w = np.exp(-(r2 - r2.min()) / scale)
+        alpha = w / w.sum()
+    elif rule.startswith("bag"):
+        # bootstrap smoothing: the tie-broken range search averaged over M Gaussian draws of
+        # the pair table from its IF covariance, tolerance held fixed; seeded by the table
+        M = 100
+        rng = np.random.default_rng(int(abs(Psi).sum() * 1e6) % 2**32)
+        L = np.linalg.cholesky(cov + 1e-12 * np.eye(cov.shape[0]) * np.trace(cov))
+        i0 = crit.argmin()
+        p = np.abs(gaps[i0]).argmax()
+        tol = c * np.sqrt(var[i0, p])
+        dist = ((A - anchor) ** 2).sum(1)
+        alpha = np.zeros(K1)
+        for _ in range(M):
+            Pb = Psi + (L @ rng.standard_normal(cov.shape[0])).reshape(K1, K2)
+            Db = np.stack([Pb[:, j] - Pb[:, l] for j, l in pairs], 1)
+            cb = np.abs(A @ Db).max(1)
+            ok = cb <= cb.min() + tol
+            a_b = A[np.flatnonzero(ok)[dist[ok].argmin()]]
+            if rule.startswith("bagtest"):
+                # the contrast test and variance guard inside each draw (SEs at full sample)
+                wa, wp = np.kron(a_b, beta), np.kron(anchor, beta)
+                se_s, se_p = np.sqrt(wa @ cov @ wa), np.sqrt(wp @ cov @ wp)
+                se_d = np.sqrt(max((wa - wp) @ cov @ (wa - wp), 0.0))
+                d_b = (a_b - anchor) @ Pb @ beta
+                if not (se_s <= 1.05 * se_p or abs(d_b) > 1.5 * se_d):
+                    a_b = anchor
+            alpha += a_b
+        alpha /= M
+        if rule.startswith("bagtest"):
+            est = alpha @ Psi @ beta
+            return est, est
+    else:
+        i0 = crit.argmin()
+        p = np.abs(gaps[i0]).argmax()
+        tol = c * np.sqrt(var[i0, p])
+        ok = crit <= crit[i0] + tol
+        dist = ((A - anchor) ** 2).sum(1)
+        i = np.flatnonzero(ok)[dist[ok].argmin()]
+        alpha = A[i]
+    if rule == "bag-noguard":
+        guard = 0.0
+    elif rule == "bag-noguard-z2":
+        guard, z = 0.0, 2.0
+    return finish(o, alpha, anchor, z, guard)
+
+
+def finish(o, alpha, anchor, z=1.5, guard=1.05):
+    """The estimate at propensity weights alpha and the headline after the contrast test with
+    its variance guard against the anchor (PLS), at the least-squares outcome weights."""
+    Psi, beta, cov = o["Psi"], o["beta"], o["cov"]
+    est = alpha @ Psi @ beta
+    pls = Psi[-1] @ beta
+    # IF covariance of alpha-blend at beta: w = kron(alpha, beta)
+    wa = np.kron(alpha, beta)
+    wp = np.kron(anchor, beta)
+    se_s = np.sqrt(wa @ cov @ wa)
+    se_p = np.sqrt(wp @ cov @ wp)
+    se_d = np.sqrt(max((wa - wp) @ cov @ (wa - wp), 0.0))
+    keep = se_s <= guard * se_p or abs(est - pls) > z * se_d
+    return est, est if keep else pls
+
+
+RULES = [
+    "range",
+    "debiased",
+    "soft",
+    "soft-se",
+    "soft:0.3",
+    "soft:3",
+    "soft:1000",
+    "bag",
+    "bagtest",
+    "bag-noguard",
+    "bag-noguard-z2",
+]
+
+
+def rows_frame(path) -> pd.DataFrame:
+    """Per-replicate estimates of every rule (untested and headline) for one stored cell."""
+    out = pickle.load(open(path, "rb"))
+    A = lattice(out[0]["Psi"].shape[0], 10)
+    A = np.vstack([np.eye(A.shape[1]), A])
+    cols = {
+        "cell": Path(path).stem.rsplit("_", 1)[0],
+        "rep": np.arange(len(out)),
+        "truth": [o["truth"] for o in out],
+        "pls": [o["pls"] for o in out],
+        "package_main": [o["main"] for o in out],
+        "package_untested": [o["untested"] for o in out],
+    }
+    for rule in RULES:
+        ev = np.array([evaluate(o, A, rule) for o in out])
+        cols[f"{rule}_untested"], cols[f"{rule}_headline"] = ev[:, 0], ev[:, 1]
+    return pd.DataFrame(cols)
+
+
+def _ratio(e, g) -> str:
+    return f"{np.sqrt(((e - g.truth) ** 2).mean() / ((g.pls - g.truth) ** 2).mean()):.3f}"
+
+
+def _diff(e, ref, t) -> str:
+    d = (e - t) ** 2 - (ref - t) ** 2
+    return f"{d.mean():+.3g} ({d.std(ddof=1) / np.sqrt(len(d)):.2g})"
+
+
+def table(df: pd.DataFrame) -> str:
+    """Markdown table: per cell and rule, RMSE ratio to PLS and the paired squared-error
+    difference (MC SE) against PLS and against the emulated current rule's headline."""
+    lines = [
+        "| cell | reps | rule | untested / PLS | headline / PLS | headline minus PLS | "
+        "headline minus current rule |",
+        "|---|---|---|---|---|---|---|",
+    ]
+    for cell, g in df.groupby("cell", sort=False):
+        for rule in ["package", *RULES]:
+            if rule == "package":
+                u, h = g.package_untested, g.package_main
+            else:
+                u, h = g[f"{rule}_untested"], g[f"{rule}_headline"]
+            lines.append(
+                f"| {cell} | {len(g)} | {rule} | {_ratio(u, g)} | {_ratio(h, g)} "
+                f"| {_diff(h, g.pls, g.truth)} | {_diff(h, g.range_headline, g.truth)} |"
+            )
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":
+    if sys.argv[1] == "table":
+        print(table(pd.read_csv(sys.argv[2])))
+        sys.exit(0)
+    if sys.argv[1] == "csv":
+        pd.concat([rows_frame(p) for p in sys.argv[3:]]).to_csv(sys.argv[2], index=False)
+        sys.exit(0)
+    _, _, seed, lib, design, n, reps, path = sys.argv
+    out = Parallel(n_jobs=2)(
+        delayed(one)(design, int(n), lib, r, int(seed)) for r in range(int(reps))
+    )
+    pickle.dump(out, open(path, "wb"))
+    print(table(rows_frame(path)))
