@@ -18,7 +18,9 @@ sets. Three ways to let the noise into the selection, each a published idea:
   tie-broken range search averaged over M = 100 Gaussian draws of the pair table from its IF
   covariance (tolerance held at the full-sample value), then the test; ``bagtest`` runs the
   test and guard inside each draw and averages the outcomes (no outer test);
-  ``bag-noguard`` and ``bag-noguard-z2`` drop the variance guard of the outer test (z = 1.5, 2).
+  ``bag-noguard`` and ``bag-noguard-z2`` drop the variance guard of the outer test (z = 1.5, 2);
+  ``bag-kept`` lets the current rule decide whether to leave PLS and uses the smoothed weights
+  when it does.
 
 Per replicate of a grid cell (seeds ``replicate_seeds(seed, design, n, rep)`` as in
 ``study_default_grid.py``; the default fit, bootstrap 0) ``run`` stores the pair table over the
@@ -156,6 +158,11 @@ def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
         if rule.startswith("bagtest"):
             est = alpha @ Psi @ beta
             return est, est
+        if rule == "bag-kept":
+            # the current rule decides whether to leave PLS; the smoothed weights when it does
+            est = alpha @ Psi @ beta
+            pls = Psi[-1] @ beta
+            return est, est if evaluate(o, A, "range")[1] != pls else pls
     else:
         i0 = crit.argmin()
         p = np.abs(gaps[i0]).argmax()
@@ -199,6 +206,7 @@ RULES = [
     "bagtest",
     "bag-noguard",
     "bag-noguard-z2",
+    "bag-kept",
 ]
 
 
