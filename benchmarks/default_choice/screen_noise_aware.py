@@ -21,6 +21,9 @@ sets. Three ways to let the noise into the selection, each a published idea:
   ``bag-noguard`` and ``bag-noguard-z2`` drop the variance guard of the outer test (z = 1.5, 2);
   ``bag-kept`` lets the current rule decide whether to leave PLS and uses the smoothed weights
   when it does.
+- ``se-mask:f``: a perturbation set that depends on the pair SEs, here on the search side: only
+  propensity learners whose estimate (at the least-squares outcome weights) has an IF SE at most
+  f x PLS's take part; then the current rule.
 
 Per replicate of a grid cell (seeds ``replicate_seeds(seed, design, n, rep)`` as in
 ``study_default_grid.py``; the default fit, bootstrap 0) ``run`` stores the pair table over the
@@ -96,6 +99,13 @@ def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
     Psi, beta, cov = o["Psi"], o["beta"], o["cov"]
     K1, K2 = Psi.shape
     C = cov.reshape(K1, K2, K1, K2)
+    if rule.startswith("se-mask"):
+        # only propensity learners whose estimate at the outcome weights has an IF SE at most
+        # f x PLS's take part in the search
+        f = float(rule.split(":")[1])
+        W = np.kron(np.eye(K1), beta)  # K1, K1 * K2
+        se = np.sqrt(np.einsum("ka,ab,kb->k", W, cov, W))
+        A = A[(A[:, se > f * se[-1]] == 0).all(1)]
     vals = A @ Psi  # m, K2
     pairs = list(itertools.combinations(range(K2), 2))
     gaps = np.stack([vals[:, j] - vals[:, l] for j, l in pairs], 1)  # m, P
@@ -207,6 +217,8 @@ RULES = [
     "bag-noguard",
     "bag-noguard-z2",
     "bag-kept",
+    "se-mask:1.5",
+    "se-mask:2",
 ]
 
 
