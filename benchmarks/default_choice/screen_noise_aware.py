@@ -52,7 +52,7 @@ import numpy as np
 import pandas as pd
 from joblib import Parallel, delayed
 
-from stackdr.core._pairtable import pair_rows
+from stackdr.core import pair_influence
 from stackdr.search import MAIN, PLS, UNTESTED
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
@@ -64,22 +64,13 @@ def one(design, n, lib, rep, seed):
     an = res.analysis
     inp = an.inputs[0]
     K1, K2 = an.Psi.shape
-    dbar = inp.d.mean()
-    infl = []
-    for k in range(K1):
-        H = pair_rows(inp, k)
-        psi = H.sum(axis=0) / inp.d.sum()
-        infl.append((H - inp.d[:, None] * psi[None, :]) / dbar)
-    F = np.stack(infl, axis=1)  # n, K1, K2
-    m = F.shape[0]
-    G = F.reshape(m, K1 * K2)
-    cov = G.T @ G / m**2
+    G = np.stack([pair_influence(inp, k) for k in range(K1)], axis=1).reshape(inp.n, K1 * K2)
     by = {e.name: e.estimate for e in res.estimators}
     return dict(
         truth=data.truth,
         Psi=an.Psi.copy(),
         beta=np.asarray(an.stack_beta, float),
-        cov=cov,
+        cov=G.T @ G / inp.n**2,
         names=list(an.propensity_names),
         main=by[MAIN],
         pls=by[PLS],
@@ -90,11 +81,14 @@ def one(design, n, lib, rep, seed):
 def lattice(K: int, res: int) -> np.ndarray:
     """Points of the simplex in K dimensions with coordinates in multiples of 1 / res."""
     pts = [c for c in itertools.product(range(res + 1), repeat=K - 1) if sum(c) <= res]
-    A = np.array([[*c, res - sum(c)] for c in pts], float) / res
-    return A
+    return np.array([[*c, res - sum(c)] for c in pts], float) / res
 
 
-def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
+# Outer contrast test (z, variance guard) per rule; the package's 1.5 and 1.05 otherwise.
+TESTS = {"bag-noguard": (1.5, 0.0), "bag-noguard-z2": (2.0, 0.0)}
+
+
+def evaluate(o, A, rule, c=0.25):
     """One rule on lattice A for one stored replicate: (untested, headline) estimates."""
     Psi, beta, cov = o["Psi"], o["beta"], o["cov"]
     K1, K2 = Psi.shape
@@ -106,8 +100,8 @@ def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
         W = np.kron(np.eye(K1), beta)  # K1, K1 * K2
         se = np.sqrt(np.einsum("ka,ab,kb->k", W, cov, W))
         A = A[(A[:, se > f * se[-1]] == 0).all(1)]
-    vals = A @ Psi  # m, K2
     pairs = list(itertools.combinations(range(K2), 2))
+    vals = A @ Psi  # m, K2
     gaps = np.stack([vals[:, j] - vals[:, l] for j, l in pairs], 1)  # m, P
     var = np.stack(
         [
@@ -126,6 +120,11 @@ def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
     else:
         crit = np.abs(gaps).max(1)
     anchor = np.eye(K1)[-1]
+    dist = ((A - anchor) ** 2).sum(1)
+    i0 = crit.argmin()
+    # tie-break tolerance: c x SE of the gap attaining the criterion at its optimum
+    tol = c * np.sqrt(var[i0, np.abs(gaps[i0]).argmax()])
+    alpha = _tie_broken(A, crit, tol, dist)
     if rule.startswith("soft"):
         # pair-average style weights over the vertices (the first K1 lattice rows)
         r2 = crit[:K1] ** 2
@@ -139,69 +138,50 @@ def evaluate(o, A, rule, c=0.25, z=1.5, guard=1.05):
         w = np.exp(-(r2 - r2.min()) / scale)
         alpha = w / w.sum()
     elif rule.startswith("bag"):
-        # bootstrap smoothing: the tie-broken range search averaged over M Gaussian draws of
-        # the pair table from its IF covariance, tolerance held fixed; seeded by the table
-        M = 100
+        # bootstrap smoothing: the tie-broken range search averaged over M = 100 Gaussian draws
+        # of the pair table from its IF covariance, tolerance held fixed; seeded by the table
         rng = np.random.default_rng(int(abs(Psi).sum() * 1e6) % 2**32)
         L = np.linalg.cholesky(cov + 1e-12 * np.eye(cov.shape[0]) * np.trace(cov))
-        i0 = crit.argmin()
-        p = np.abs(gaps[i0]).argmax()
-        tol = c * np.sqrt(var[i0, p])
-        dist = ((A - anchor) ** 2).sum(1)
-        alpha = np.zeros(K1)
-        for _ in range(M):
+        draws = []
+        for _ in range(100):
             Pb = Psi + (L @ rng.standard_normal(cov.shape[0])).reshape(K1, K2)
             Db = np.stack([Pb[:, j] - Pb[:, l] for j, l in pairs], 1)
-            cb = np.abs(A @ Db).max(1)
-            ok = cb <= cb.min() + tol
-            a_b = A[np.flatnonzero(ok)[dist[ok].argmin()]]
-            if rule.startswith("bagtest"):
+            a_b = _tie_broken(A, np.abs(A @ Db).max(1), tol, dist)
+            if rule == "bagtest" and not _kept(o, a_b, (a_b - anchor) @ Pb @ beta):
                 # the contrast test and variance guard inside each draw (SEs at full sample)
-                wa, wp = np.kron(a_b, beta), np.kron(anchor, beta)
-                se_s, se_p = np.sqrt(wa @ cov @ wa), np.sqrt(wp @ cov @ wp)
-                se_d = np.sqrt(max((wa - wp) @ cov @ (wa - wp), 0.0))
-                d_b = (a_b - anchor) @ Pb @ beta
-                if not (se_s <= 1.05 * se_p or abs(d_b) > 1.5 * se_d):
-                    a_b = anchor
-            alpha += a_b
-        alpha /= M
-        if rule.startswith("bagtest"):
-            est = alpha @ Psi @ beta
+                a_b = anchor
+            draws.append(a_b)
+        smoothed = sum(draws) / len(draws)
+        est, pls = smoothed @ Psi @ beta, Psi[-1] @ beta
+        if rule == "bagtest":
             return est, est
         if rule == "bag-kept":
-            # the current rule decides whether to leave PLS; the smoothed weights when it does
-            est = alpha @ Psi @ beta
-            pls = Psi[-1] @ beta
-            return est, est if evaluate(o, A, "range")[1] != pls else pls
-    else:
-        i0 = crit.argmin()
-        p = np.abs(gaps[i0]).argmax()
-        tol = c * np.sqrt(var[i0, p])
-        ok = crit <= crit[i0] + tol
-        dist = ((A - anchor) ** 2).sum(1)
-        i = np.flatnonzero(ok)[dist[ok].argmin()]
-        alpha = A[i]
-    if rule == "bag-noguard":
-        guard = 0.0
-    elif rule == "bag-noguard-z2":
-        guard, z = 0.0, 2.0
-    return finish(o, alpha, anchor, z, guard)
+            # the current rule (alpha: the tie-broken range search) decides whether to leave
+            # PLS (it does not when it returns PLS itself); the smoothed weights when it does
+            d = alpha @ Psi @ beta - pls
+            return est, est if d != 0 and _kept(o, alpha, d) else pls
+        alpha = smoothed
+    est, pls = alpha @ Psi @ beta, Psi[-1] @ beta
+    z, guard = TESTS.get(rule, (1.5, 1.05))
+    return est, est if _kept(o, alpha, est - pls, z, guard) else pls
 
 
-def finish(o, alpha, anchor, z=1.5, guard=1.05):
-    """The estimate at propensity weights alpha and the headline after the contrast test with
-    its variance guard against the anchor (PLS), at the least-squares outcome weights."""
-    Psi, beta, cov = o["Psi"], o["beta"], o["cov"]
-    est = alpha @ Psi @ beta
-    pls = Psi[-1] @ beta
-    # IF covariance of alpha-blend at beta: w = kron(alpha, beta)
-    wa = np.kron(alpha, beta)
-    wp = np.kron(anchor, beta)
-    se_s = np.sqrt(wa @ cov @ wa)
-    se_p = np.sqrt(wp @ cov @ wp)
+def _tie_broken(A, crit, tol, dist) -> np.ndarray:
+    """The lattice point nearest the anchor among those within tol of the smallest criterion."""
+    ok = crit <= crit.min() + tol
+    return A[np.flatnonzero(ok)[dist[ok].argmin()]]
+
+
+def _kept(o, alpha, d, z=1.5, guard=1.05) -> bool:
+    """The contrast test with its variance guard at the least-squares outcome weights: keep
+    weights alpha (difference d from PLS) when their IF SE is at most guard x PLS's or
+    |d| > z x the paired IF SE of the difference."""
+    beta, cov = o["beta"], o["cov"]
+    wa = np.kron(alpha, beta)  # the blend's IF is kron(alpha, beta) applied to the pair IFs
+    wp = np.kron(np.eye(len(alpha))[-1], beta)
+    se_s, se_p = np.sqrt(wa @ cov @ wa), np.sqrt(wp @ cov @ wp)
     se_d = np.sqrt(max((wa - wp) @ cov @ (wa - wp), 0.0))
-    keep = se_s <= guard * se_p or abs(est - pls) > z * se_d
-    return est, est if keep else pls
+    return bool(se_s <= guard * se_p or abs(d) > z * se_d)
 
 
 RULES = [

@@ -445,21 +445,29 @@ def pair_rows(inp: PairInputs, k: int) -> np.ndarray:
     return H
 
 
+def pair_influence(inp: PairInputs, k: int) -> np.ndarray:
+    """Influence-function values of every pair (k, j) for one propensity learner k: (n, K2),
+    ``(H - psi d) / mean(d)`` (weighted sums and mean with sampling weights)."""
+    H = pair_rows(inp, k)
+    if inp.sample_weight is None:
+        psi = H.sum(axis=0) / inp.d.sum()
+        dbar = inp.d.mean()
+    else:
+        w = inp.sample_weight
+        psi = (w @ H) / (w @ inp.d)
+        dbar = (w @ inp.d) / w.sum()
+    return (H - inp.d[:, None] * psi[None, :]) / dbar
+
+
 def pair_standard_errors(inp: PairInputs) -> np.ndarray:
     """Influence-function SE of every pair (K1 x K2); one pass per propensity learner, so memory
     stays at n x K2."""
     K1, K2 = inp.shape
-    w = _weights(inp, None)
-    dbar = (w @ inp.d) / w.sum() if inp.sample_weight is not None else inp.d.mean()
     se = np.empty((K1, K2))
     for k in range(K1):
-        H = pair_rows(inp, k)
-        if inp.sample_weight is None:
-            psi = H.sum(axis=0) / inp.d.sum()
-        else:
-            psi = (w @ H) / (w @ inp.d)
-        infl = (H - inp.d[:, None] * psi[None, :]) / dbar
-        se[k] = influence_standard_error(infl, inp.sample_weight, inp.cluster_codes)
+        se[k] = influence_standard_error(
+            pair_influence(inp, k), inp.sample_weight, inp.cluster_codes
+        )
     return se
 
 
