@@ -41,6 +41,10 @@ the emulation is close, not exact). ``table`` prints the paired Markdown table o
 Usage: python benchmarks/default_choice/screen_noise_aware.py run SEED LIB DESIGN N REPS PKL
        python benchmarks/default_choice/screen_noise_aware.py csv CSV PKL...
        python benchmarks/default_choice/screen_noise_aware.py table CSV
+       python benchmarks/default_choice/screen_noise_aware.py signal PKL...
+
+``signal`` measures how much one data set's pair table says about which propensity vertex is
+better (``results/default_choice_criterion_signal.md``).
 """
 
 import itertools
@@ -101,20 +105,7 @@ def evaluate(o, A, rule, c=0.25):
         se = np.sqrt(np.einsum("ka,ab,kb->k", W, cov, W))
         A = A[(A[:, se > f * se[-1]] == 0).all(1)]
     pairs = list(itertools.combinations(range(K2), 2))
-    vals = A @ Psi  # m, K2
-    gaps = np.stack([vals[:, j] - vals[:, l] for j, l in pairs], 1)  # m, P
-    var = np.stack(
-        [
-            np.einsum(
-                "mk,kl,ml->m",
-                A,
-                C[:, j, :, j] + C[:, l, :, l] - C[:, j, :, l] - C[:, l, :, j],
-                A,
-            )
-            for j, l in pairs
-        ],
-        1,
-    )
+    gaps, var = gaps_and_variances(o, A)
     if rule == "debiased":
         crit = np.sqrt(np.maximum((gaps**2 - var).max(1), 0.0))
     else:
@@ -164,6 +155,30 @@ def evaluate(o, A, rule, c=0.25):
     est, pls = alpha @ Psi @ beta, Psi[-1] @ beta
     z, guard = TESTS.get(rule, (1.5, 1.05))
     return est, est if _kept(o, alpha, est - pls, z, guard) else pls
+
+
+def gaps_and_variances(o, A) -> tuple[np.ndarray, np.ndarray]:
+    """For every row of A (propensity weights): the gap between each pair of outcome learners'
+    estimates and its paired IF variance, both (len(A), number of pairs)."""
+    Psi, cov = o["Psi"], o["cov"]
+    K1, K2 = Psi.shape
+    C = cov.reshape(K1, K2, K1, K2)
+    pairs = list(itertools.combinations(range(K2), 2))
+    vals = A @ Psi  # m, K2
+    gaps = np.stack([vals[:, j] - vals[:, l] for j, l in pairs], 1)  # m, P
+    var = np.stack(
+        [
+            np.einsum(
+                "mk,kl,ml->m",
+                A,
+                C[:, j, :, j] + C[:, l, :, l] - C[:, j, :, l] - C[:, l, :, j],
+                A,
+            )
+            for j, l in pairs
+        ],
+        1,
+    )
+    return gaps, var
 
 
 def _tie_broken(A, crit, tol, dist) -> np.ndarray:
@@ -251,7 +266,66 @@ def table(df: pd.DataFrame) -> str:
     return "\n".join(lines)
 
 
+def signal(path) -> str:
+    """How much a criterion computed from one data set's pair table can say about which
+    propensity vertex is better, for one stored cell (each vertex at the least-squares outcome
+    weights). Per vertex: RMSE over PLS, the mean pair-table error per outcome learner over the
+    replicates, the squared range of that mean row (what the range criterion sees without
+    sampling noise), and the mean over replicates of the squared range and of the debiased
+    criterion max (gap^2 - IF variance). Then the paired contrast of each criterion, and of the
+    debiased one with each gap's Monte Carlo variance in place of its IF variance (an oracle),
+    between the library learner with the smallest RMSE and the stacked column (PLS): mean, SD
+    over replicates, their ratio, and the share of data sets where the criterion ranks that
+    learner ahead of PLS. A share near 0.5 means one data set's table says nothing about it."""
+    out = pickle.load(open(path, "rb"))
+    names = out[0]["names"]
+    K1 = len(names)
+    truth = np.array([o["truth"] for o in out])
+    errors = np.array([o["Psi"] for o in out]) - truth[:, None, None]  # reps, K1, K2
+    at_ls = np.array([o["Psi"] @ o["beta"] for o in out]) - truth[:, None]  # reps, K1
+    rmse = np.sqrt((at_ls**2).mean(0))
+    gaps, var = map(np.array, zip(*(gaps_and_variances(o, np.eye(K1)) for o in out)))
+    raw, deb = (gaps**2).max(2), (gaps**2 - var).max(2)
+    # the same with each gap's variance over the replicates in place of its IF variance: the
+    # best debiasing any estimate of the noise could give (an oracle, not an estimator)
+    oracle = (gaps**2 - gaps.var(0, ddof=1)).max(2)
+    mean_rows = errors.mean(0)
+    lines = [
+        f"{Path(path).stem}: {len(out)} replicates",
+        "",
+        "| vertex | RMSE / PLS | mean error per outcome learner | squared range of the mean "
+        "row | mean squared range | mean debiased criterion |",
+        "|---|---|---|---|---|---|",
+    ]
+    for k, name in enumerate(names):
+        cells = " ".join(f"{x:+.2f}" for x in mean_rows[k])
+        lines.append(
+            f"| {name} | {rmse[k] / rmse[-1]:.3f} | {cells} | {np.ptp(mean_rows[k]) ** 2:.2f} "
+            f"| {raw[:, k].mean():.2f} | {deb[:, k].mean():.2f} |"
+        )
+    best = int(rmse[:-1].argmin())
+    lines += [
+        "",
+        f"library learner best in hindsight: {names[best]} ({rmse[best] / rmse[-1]:.3f} x PLS); "
+        "criterion at it minus at the stacked column (negative favours it):",
+        "",
+        "| criterion | mean | SD | mean / SD | share ranking it ahead of PLS |",
+        "|---|---|---|---|---|",
+    ]
+    criteria = (("squared range", raw), ("debiased", deb), ("oracle-debiased", oracle))
+    for label, crit in criteria:
+        d = crit[:, best] - crit[:, -1]
+        lines.append(
+            f"| {label} | {d.mean():+.2f} | {d.std(ddof=1):.2f} | "
+            f"{d.mean() / d.std(ddof=1):+.2f} | {(d < 0).mean():.2f} |"
+        )
+    return "\n".join(lines)
+
+
 if __name__ == "__main__":
+    if sys.argv[1] == "signal":
+        print("\n\n".join(signal(p) for p in sys.argv[2:]))
+        sys.exit(0)
     if sys.argv[1] == "table":
         print(table(pd.read_csv(sys.argv[2])))
         sys.exit(0)
