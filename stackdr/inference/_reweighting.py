@@ -207,11 +207,15 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus, contr
     layout = _Layout(K1, K2, cf_meta["classifier"])
     sl = layout.slices()
     n = inputs[0].n
-    W = np.empty((n, len(indices)))
+    # One contiguous row per replicate: filling the columns of an n x chunk array strides
+    # through memory and cost more than the moments and the search together at n = 1e5.
+    # W is the n x chunk view.
+    rows = np.empty((len(indices), n))
     for col, b in enumerate(indices):
-        W[:, col] = draw_row_weights(generators[b], n, kind, inputs[0].cluster_codes)
+        rows[col] = draw_row_weights(generators[b], n, kind, inputs[0].cluster_codes)
+    W = rows.T
     t0 = time.perf_counter()
-    sums = [W.T @ F for F in features]  # one matrix product per repeat
+    sums = [rows @ F for F in features]  # one matrix product per repeat
     tables = np.stack([(s[:, sl["pairs"]] / s[:, sl["d"]]).reshape(-1, K1, K2) for s in sums])
     s0 = np.sum(sums, axis=0) if len(sums) > 1 else sums[0]
     gram = s0[:, sl["gram"]].reshape(-1, K2, K2)
@@ -240,7 +244,7 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus, contr
         Psi = Psi_b[col]
         phi_fn = None
         if settings.blend != "riesz":
-            phi_fn = _weighted_phi(inputs, settings.blend, W[:, col], lattice, col)
+            phi_fn = _weighted_phi(inputs, settings.blend, rows[col], lattice, col)
         search = run_search(
             Psi,
             settings,
