@@ -96,7 +96,6 @@ def evaluate(o, A, rule, c=0.25):
     """One rule on lattice A for one stored replicate: (untested, headline) estimates."""
     Psi, beta, cov = o["Psi"], o["beta"], o["cov"]
     K1, K2 = Psi.shape
-    C = cov.reshape(K1, K2, K1, K2)
     if rule.startswith("se-mask"):
         # only propensity learners whose estimate at the outcome weights has an IF SE at most
         # f x PLS's take part in the search
@@ -104,7 +103,6 @@ def evaluate(o, A, rule, c=0.25):
         W = np.kron(np.eye(K1), beta)  # K1, K1 * K2
         se = np.sqrt(np.einsum("ka,ab,kb->k", W, cov, W))
         A = A[(A[:, se > f * se[-1]] == 0).all(1)]
-    pairs = list(itertools.combinations(range(K2), 2))
     gaps, var = gaps_and_variances(o, A)
     if rule == "debiased":
         crit = np.sqrt(np.maximum((gaps**2 - var).max(1), 0.0))
@@ -119,7 +117,7 @@ def evaluate(o, A, rule, c=0.25):
     if rule.startswith("soft"):
         # pair-average style weights over the vertices (the first K1 lattice rows)
         r2 = crit[:K1] ** 2
-        pse = np.sqrt(np.einsum("kjkj->kj", C))
+        pse = np.sqrt(np.diag(cov))  # the pair SEs
         if rule == "soft":
             scale = max(r2.min(), 0.01 * np.median(pse**2))
         elif rule == "soft-se":
@@ -133,6 +131,7 @@ def evaluate(o, A, rule, c=0.25):
         # of the pair table from its IF covariance, tolerance held fixed; seeded by the table
         rng = np.random.default_rng(int(abs(Psi).sum() * 1e6) % 2**32)
         L = np.linalg.cholesky(cov + 1e-12 * np.eye(cov.shape[0]) * np.trace(cov))
+        pairs = list(itertools.combinations(range(K2), 2))
         draws = []
         for _ in range(100):
             Pb = Psi + (L @ rng.standard_normal(cov.shape[0])).reshape(K1, K2)

@@ -207,13 +207,12 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus, contr
     layout = _Layout(K1, K2, cf_meta["classifier"])
     sl = layout.slices()
     n = inputs[0].n
-    # One contiguous row per replicate: filling the columns of an n x chunk array strides
-    # through memory and cost more than the moments and the search together at n = 1e5.
-    # W is the n x chunk view.
+    # One contiguous row per replicate (chunk x n; W' in the module notes): filling the columns
+    # of an n x chunk array strides through memory and cost more than the moments and the
+    # search together at n = 1e5.
     rows = np.empty((len(indices), n))
     for col, b in enumerate(indices):
         rows[col] = draw_row_weights(generators[b], n, kind, inputs[0].cluster_codes)
-    W = rows.T
     t0 = time.perf_counter()
     sums = [rows @ F for F in features]  # one matrix product per repeat
     tables = np.stack([(s[:, sl["pairs"]] / s[:, sl["d"]]).reshape(-1, K1, K2) for s in sums])
@@ -239,7 +238,7 @@ def _chunk(an, features, inputs, cf_meta, generators, indices, kind, taus, contr
     moved = np.zeros(len(indices), dtype=bool)
     pair_se = an.pair_se[:K1]
     t1 = time.perf_counter()
-    lattice = _replicate_lattice(inputs, settings, W, K1, K2)
+    lattice = _replicate_lattice(inputs, settings, rows.T, K1, K2)
     for col in range(len(indices)):
         Psi = Psi_b[col]
         phi_fn = None
